@@ -1,0 +1,643 @@
+/*
+ * kmeans.c - online k-means with lazy event-time decay (see kmeans.h).
+ *
+ * Storage per cluster k: double c, v (variance), s, 1/s, log s (dim each)
+ * for learning and for the density; float mirrors cf (centroid), rf (1/s^2)
+ * and s2f (s^2) padded to dp = vec_padded(dim) with zeros for the assign
+ * loop.  expire[k] is the time at which n_k(t) crosses retire_weight, so
+ * retirement is a comparison, and next_expire (a lower bound of all
+ * expire[k]) makes the no-op case O(1).
+ */
+#include "kmeans.h"
+
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "err.h"
+#include "vec.h"
+
+struct kmeans {
+    kmeans_params p;
+    uint32_t dp;
+    int seeded;
+    uint64_t retired;
+    rng r;
+    double *c, *v, *s, *inv_s, *log_s; /* k x dim */
+    double *log_s_sum, *n, *last, *expire; /* k */
+    float *cf, *rf, *s2f;                  /* k x dp */
+    double tot, tot_t;                     /* decayed total at tot_t */
+    double next_expire;
+    /* candidate ring */
+    double *cand_z, *cand_score, *cand_t;
+    uint8_t *cand_used;
+    uint32_t cand_head, cand_count;
+    /* scratch */
+    float *zf, *mf, *ef2;
+    double *d2;
+};
+
+void kmeans_params_default(kmeans_params *p, uint32_t dim, uint32_t k)
+{
+    p->dim = dim;
+    p->k = k;
+    p->half_life_days = 7;
+    p->spread_floor = 0.05;
+    p->spread_init = 1.0;
+    p->retire_weight = 0.5;
+    p->candidates = 64;
+    p->seed = 1;
+}
+
+static int params_ok(const kmeans_params *p)
+{
+    return p && p->dim >= 1 && p->dim <= (1u << 16) && p->k >= 1 &&
+           p->k <= (1u << 16) && isfinite(p->half_life_days) &&
+           p->half_life_days >= 0 && isfinite(p->spread_floor) &&
+           p->spread_floor > 0 && isfinite(p->spread_init) &&
+           p->spread_init > 0 && isfinite(p->retire_weight) &&
+           p->retire_weight >= 0 && p->candidates <= (1u << 20);
+}
+
+kmeans *kmeans_new(const kmeans_params *p, int *err)
+{
+    int e = CORE_EINVAL;
+    kmeans *km = NULL;
+    if (!params_ok(p))
+        goto fail;
+    e = CORE_ENOMEM;
+    km = calloc(1, sizeof *km);
+    if (!km)
+        goto fail;
+    km->p = *p;
+    km->dp = vec_padded(p->dim);
+    size_t kd = (size_t)p->k * p->dim, kp = (size_t)p->k * km->dp;
+    size_t cn = p->candidates ? p->candidates : 1;
+    km->c = calloc(kd, sizeof(double));
+    km->v = calloc(kd, sizeof(double));
+    km->s = calloc(kd, sizeof(double));
+    km->inv_s = calloc(kd, sizeof(double));
+    km->log_s = calloc(kd, sizeof(double));
+    km->log_s_sum = calloc(p->k, sizeof(double));
+    km->n = calloc(p->k, sizeof(double));
+    km->last = calloc(p->k, sizeof(double));
+    km->expire = calloc(p->k, sizeof(double));
+    km->cf = calloc(kp, sizeof(float));
+    km->rf = calloc(kp, sizeof(float));
+    km->s2f = calloc(kp, sizeof(float));
+    km->cand_z = calloc(cn * p->dim, sizeof(double));
+    km->cand_score = calloc(cn, sizeof(double));
+    km->cand_t = calloc(cn, sizeof(double));
+    km->cand_used = calloc(cn, 1);
+    km->zf = calloc(km->dp, sizeof(float));
+    km->mf = calloc(km->dp, sizeof(float));
+    km->ef2 = calloc(km->dp, sizeof(float));
+    km->d2 = calloc(p->k, sizeof(double));
+    if (!km->c || !km->v || !km->s || !km->inv_s || !km->log_s ||
+        !km->log_s_sum || !km->n || !km->last || !km->expire || !km->cf ||
+        !km->rf || !km->s2f || !km->cand_z || !km->cand_score ||
+        !km->cand_t || !km->cand_used || !km->zf || !km->mf || !km->ef2 ||
+        !km->d2)
+        goto fail_arrays;
+    rng_seed(&km->r, p->seed);
+    km->next_expire = INFINITY;
+    if (err)
+        *err = 0;
+    return km;
+fail_arrays:
+    kmeans_free(km);
+fail:
+    if (err)
+        *err = e;
+    return NULL;
+}
+
+void kmeans_free(kmeans *km)
+{
+    if (!km)
+        return;
+    free(km->c);
+    free(km->v);
+    free(km->s);
+    free(km->inv_s);
+    free(km->log_s);
+    free(km->log_s_sum);
+    free(km->n);
+    free(km->last);
+    free(km->expire);
+    free(km->cf);
+    free(km->rf);
+    free(km->s2f);
+    free(km->cand_z);
+    free(km->cand_score);
+    free(km->cand_t);
+    free(km->cand_used);
+    free(km->zf);
+    free(km->mf);
+    free(km->ef2);
+    free(km->d2);
+    free(km);
+}
+
+size_t kmeans_bytes(const kmeans *km)
+{
+    size_t kd = (size_t)km->p.k * km->p.dim, kp = (size_t)km->p.k * km->dp;
+    size_t cn = km->p.candidates ? km->p.candidates : 1;
+    return sizeof *km + kd * 5 * sizeof(double) +
+           (size_t)km->p.k * 5 * sizeof(double) + kp * 3 * sizeof(float) +
+           cn * (km->p.dim + 2) * sizeof(double) + cn +
+           (size_t)km->dp * 3 * sizeof(float);
+}
+
+const kmeans_params *kmeans_get_params(const kmeans *km) { return &km->p; }
+int kmeans_seeded(const kmeans *km) { return km->seeded; }
+uint64_t kmeans_retired(const kmeans *km) { return km->retired; }
+
+/* Decay factor from time a to time b (1 when b <= a or no decay). */
+static inline double decay_factor(const kmeans *km, double a, double b)
+{
+    if (km->p.half_life_days <= 0 || !(b > a))
+        return 1.0;
+    return exp2(-(b - a) / km->p.half_life_days);
+}
+
+static void refresh_expire(kmeans *km, uint32_t k)
+{
+    double n = km->n[k], fl = km->p.retire_weight;
+    if (km->p.half_life_days <= 0)
+        km->expire[k] = n < fl ? -INFINITY : INFINITY;
+    else if (n < fl)
+        km->expire[k] = -INFINITY;
+    else if (fl <= 0)
+        km->expire[k] = INFINITY;
+    else
+        km->expire[k] = km->last[k] + km->p.half_life_days * log2(n / fl);
+    if (km->expire[k] < km->next_expire)
+        km->next_expire = km->expire[k];
+}
+
+/* Recompute every derived array of cluster k from c and v. */
+static void refresh_cluster(kmeans *km, uint32_t k)
+{
+    uint32_t d = km->p.dim;
+    double fl2 = km->p.spread_floor * km->p.spread_floor;
+    double *c = km->c + (size_t)k * d, *v = km->v + (size_t)k * d;
+    double *s = km->s + (size_t)k * d, *is = km->inv_s + (size_t)k * d;
+    double *ls = km->log_s + (size_t)k * d;
+    float *cf = km->cf + (size_t)k * km->dp, *rf = km->rf + (size_t)k * km->dp;
+    float *s2f = km->s2f + (size_t)k * km->dp;
+    double sum = 0;
+    for (uint32_t j = 0; j < d; j++) {
+        double s2 = v[j] > fl2 ? v[j] : fl2;
+        s[j] = sqrt(s2);
+        is[j] = 1.0 / s[j];
+        ls[j] = 0.5 * log(s2);
+        sum += ls[j];
+        cf[j] = (float)c[j];
+        rf[j] = (float)(1.0 / s2);
+        s2f[j] = (float)s2;
+    }
+    km->log_s_sum[k] = sum;
+}
+
+/* Bring the total to time t. */
+static void total_to(kmeans *km, double t)
+{
+    if (!isfinite(t))
+        return;
+    if (t > km->tot_t) {
+        km->tot *= decay_factor(km, km->tot_t, t);
+        km->tot_t = t;
+    }
+}
+
+int kmeans_seed(kmeans *km, select_ws *ws, const double *Z, size_t n,
+                double t, uint32_t restarts, uint32_t lloyd_passes,
+                int32_t *labels)
+{
+    uint32_t k = km->p.k, d = km->p.dim;
+    if (!ws || !Z || n < k || restarts == 0 || lloyd_passes == 0)
+        return CORE_EINVAL;
+    select_kmeans_opts o = {restarts, lloyd_passes, 0};
+    int rc = select_kmeans(ws, Z, n, k, &o, &km->r, km->c, NULL, NULL);
+    if (rc < 0)
+        return rc;
+    memset(km->v, 0, (size_t)k * d * sizeof(double));
+    memset(km->n, 0, (size_t)k * sizeof(double));
+    /* select_kmeans stops right after an assignment step, so the nearest
+     * centre recomputed here is the label it ended with. */
+    for (size_t i = 0; i < n; i++) {
+        const double *x = Z + i * d;
+        uint32_t bl = 0;
+        double bd = vec_dist2(x, km->c, d);
+        for (uint32_t cc = 1; cc < k; cc++) {
+            double dd = vec_dist2(x, km->c + (size_t)cc * d, d);
+            if (dd < bd) {
+                bd = dd;
+                bl = cc;
+            }
+        }
+        if (labels)
+            labels[i] = (int32_t)bl;
+        km->n[bl] += 1;
+        double *v = km->v + (size_t)bl * d, *c = km->c + (size_t)bl * d;
+        for (uint32_t j = 0; j < d; j++)
+            v[j] += (x[j] - c[j]) * (x[j] - c[j]);
+    }
+    double init2 = km->p.spread_init * km->p.spread_init;
+    km->tot = 0;
+    km->tot_t = isfinite(t) ? t : 0;
+    km->next_expire = INFINITY;
+    for (uint32_t cc = 0; cc < k; cc++) {
+        double *v = km->v + (size_t)cc * d;
+        for (uint32_t j = 0; j < d; j++)
+            v[j] = km->n[cc] >= 2 ? v[j] / km->n[cc] : init2;
+        km->last[cc] = km->tot_t;
+        km->tot += km->n[cc];
+        refresh_cluster(km, cc);
+        refresh_expire(km, cc);
+    }
+    km->seeded = 1;
+    return 0;
+}
+
+int kmeans_set_centres(kmeans *km, const double *centres, double n0, double t)
+{
+    if (!centres || !(n0 >= 0))
+        return CORE_EINVAL;
+    uint32_t k = km->p.k, d = km->p.dim;
+    memcpy(km->c, centres, (size_t)k * d * sizeof(double));
+    double init2 = km->p.spread_init * km->p.spread_init;
+    km->tot = 0;
+    km->tot_t = isfinite(t) ? t : 0;
+    km->next_expire = INFINITY;
+    for (uint32_t cc = 0; cc < k; cc++) {
+        for (uint32_t j = 0; j < d; j++)
+            km->v[(size_t)cc * d + j] = init2;
+        km->n[cc] = n0;
+        km->last[cc] = km->tot_t;
+        km->tot += n0;
+        refresh_cluster(km, cc);
+        refresh_expire(km, cc);
+    }
+    km->seeded = 1;
+    return 0;
+}
+
+int kmeans_nearest(kmeans *km, const double *z, const double *ez,
+                   const uint8_t *miss, uint32_t m, uint32_t *idx,
+                   double *d2)
+{
+    if (!km->seeded)
+        return CORE_EAGAIN;
+    if (m == 0 || !z || !idx || !d2)
+        return CORE_EINVAL;
+    uint32_t d = km->p.dim, dp = km->dp, k = km->p.k;
+    uint32_t obs = 0;
+    int any_err = 0;
+    for (uint32_t j = 0; j < d; j++) {
+        int mj = (miss && miss[j]) || !isfinite(z[j]);
+        km->zf[j] = mj ? 0.0f : (float)z[j];
+        km->mf[j] = mj ? 0.0f : 1.0f;
+        obs += !mj;
+        double e = (ez && !mj && isfinite(ez[j])) ? ez[j] : 0.0;
+        km->ef2[j] = (float)(e * e);
+        any_err |= e != 0;
+    }
+    if (m > k)
+        m = k;
+    if (obs == 0) {
+        for (uint32_t i = 0; i < m; i++) {
+            idx[i] = i;
+            d2[i] = 0;
+        }
+        return (int)m;
+    }
+    const float *zf = km->zf, *mf = km->mf;
+    if (any_err) {
+        for (uint32_t cc = 0; cc < k; cc++) {
+            const float *cf = km->cf + (size_t)cc * dp;
+            const float *s2f = km->s2f + (size_t)cc * dp;
+            float acc = 0;
+            for (uint32_t j = 0; j < d; j++) {
+                float t = (zf[j] - cf[j]) * mf[j];
+                acc += t * t / (s2f[j] + km->ef2[j]);
+            }
+            km->d2[cc] = acc;
+        }
+    } else if (obs == d) {
+        for (uint32_t cc = 0; cc < k; cc++)
+            km->d2[cc] = vec_wdist2_f(zf, km->cf + (size_t)cc * dp,
+                                      km->rf + (size_t)cc * dp, dp);
+    } else {
+        for (uint32_t cc = 0; cc < k; cc++)
+            km->d2[cc] = vec_mwdist2_f(zf, km->cf + (size_t)cc * dp,
+                                       km->rf + (size_t)cc * dp, mf, dp);
+    }
+    /* Partial insertion sort: the m smallest, ties to the lower index. */
+    uint32_t got = 0;
+    for (uint32_t cc = 0; cc < k; cc++) {
+        double v = km->d2[cc];
+        if (got == m && !(v < d2[m - 1]))
+            continue;
+        uint32_t pos = got < m ? got++ : m - 1;
+        while (pos > 0 && v < d2[pos - 1]) {
+            d2[pos] = d2[pos - 1];
+            idx[pos] = idx[pos - 1];
+            pos--;
+        }
+        d2[pos] = v;
+        idx[pos] = cc;
+    }
+    double scale = (double)d / (double)obs;
+    for (uint32_t i = 0; i < m; i++)
+        d2[i] *= scale;
+    return (int)m;
+}
+
+int kmeans_assign(kmeans *km, const double *z, const double *ez,
+                  const uint8_t *miss, double *d2)
+{
+    uint32_t idx;
+    double dd;
+    int rc = kmeans_nearest(km, z, ez, miss, 1, &idx, &dd);
+    if (rc < 0)
+        return rc;
+    if (d2)
+        *d2 = dd;
+    return (int)idx;
+}
+
+void kmeans_update(kmeans *km, uint32_t k, const double *z,
+                   const uint8_t *miss, double t)
+{
+    uint32_t d = km->p.dim;
+    double tt = isfinite(t) ? t : km->last[k];
+    double f = decay_factor(km, km->last[k], tt);
+    double n = km->n[k] * f + 1.0;
+    double inv = 1.0 / n;
+    double *c = km->c + (size_t)k * d, *v = km->v + (size_t)k * d;
+    for (uint32_t j = 0; j < d; j++) {
+        if ((miss && miss[j]) || !isfinite(z[j]))
+            continue;
+        double delta = z[j] - c[j];
+        c[j] += delta * inv;
+        v[j] += (delta * (z[j] - c[j]) - v[j]) * inv;
+        if (v[j] < 0)
+            v[j] = 0;
+    }
+    km->n[k] = n;
+    if (tt > km->last[k])
+        km->last[k] = tt;
+    total_to(km, tt);
+    km->tot += 1.0;
+    refresh_cluster(km, k);
+    refresh_expire(km, k);
+}
+
+int kmeans_observe(kmeans *km, const double *z, const double *ez,
+                   const uint8_t *miss, double t, double *d2)
+{
+    int k = kmeans_assign(km, z, ez, miss, d2);
+    if (k >= 0)
+        kmeans_update(km, (uint32_t)k, z, miss, t);
+    return k;
+}
+
+double kmeans_weight(const kmeans *km, uint32_t k, double t)
+{
+    return km->n[k] * decay_factor(km, km->last[k], t);
+}
+
+double kmeans_log_weight(const kmeans *km, uint32_t k, double t)
+{
+    if (!(km->n[k] > 0))
+        return -INFINITY;
+    double l = log(km->n[k]);
+    if (km->p.half_life_days > 0 && t > km->last[k])
+        l -= M_LN2 * (t - km->last[k]) / km->p.half_life_days;
+    return l;
+}
+
+double kmeans_total_weight(const kmeans *km, double t)
+{
+    return km->tot * decay_factor(km, km->tot_t, t);
+}
+
+double kmeans_log_mix_weight(const kmeans *km, uint32_t k, double t)
+{
+    double tot = kmeans_total_weight(km, t);
+    if (!(tot > 0))
+        return -INFINITY;
+    return kmeans_log_weight(km, k, t) - log(tot);
+}
+
+void kmeans_cluster(const kmeans *km, uint32_t k, kmeans_cluster_view *v)
+{
+    size_t o = (size_t)k * km->p.dim;
+    v->n = km->n[k];
+    v->last = km->last[k];
+    v->centroid = km->c + o;
+    v->spread = km->s + o;
+    v->inv_spread = km->inv_s + o;
+    v->log_spread = km->log_s + o;
+    v->log_spread_sum = km->log_s_sum[k];
+}
+
+void kmeans_offer(kmeans *km, const double *z, const uint8_t *miss,
+                  double score, double t)
+{
+    uint32_t cn = km->p.candidates;
+    if (cn == 0 || !isfinite(score))
+        return;
+    uint32_t slot = km->cand_head;
+    double *dst = km->cand_z + (size_t)slot * km->p.dim;
+    for (uint32_t j = 0; j < km->p.dim; j++)
+        dst[j] = ((miss && miss[j]) || !isfinite(z[j])) ? 0.0 : z[j];
+    km->cand_score[slot] = score;
+    km->cand_t[slot] = t;
+    if (!km->cand_used[slot]) {
+        km->cand_used[slot] = 1;
+        km->cand_count++;
+    }
+    km->cand_head = (slot + 1) % cn;
+}
+
+uint32_t kmeans_candidates(const kmeans *km) { return km->cand_count; }
+
+/* The best candidate slot: highest score, then the latest time, then the
+ * lowest slot; -1 when the ring is empty. */
+static int best_candidate(const kmeans *km)
+{
+    int best = -1;
+    for (uint32_t i = 0; i < km->p.candidates; i++) {
+        if (!km->cand_used[i])
+            continue;
+        if (best < 0 || km->cand_score[i] > km->cand_score[best] ||
+            (km->cand_score[i] == km->cand_score[best] &&
+             km->cand_t[i] > km->cand_t[best]))
+            best = (int)i;
+    }
+    return best;
+}
+
+uint32_t kmeans_retire(kmeans *km, double t, uint32_t *slots,
+                       uint32_t max_slots)
+{
+    if (!km->seeded || !isfinite(t) || !(t >= km->next_expire))
+        return 0;
+    uint32_t d = km->p.dim, out = 0;
+    double init2 = km->p.spread_init * km->p.spread_init;
+    km->next_expire = INFINITY;
+    for (uint32_t k = 0; k < km->p.k; k++) {
+        if (km->expire[k] <= t && out < max_slots) {
+            int b = best_candidate(km);
+            if (b >= 0) {
+                double w_old = kmeans_weight(km, k, t);
+                memcpy(km->c + (size_t)k * d,
+                       km->cand_z + (size_t)b * d, d * sizeof(double));
+                for (uint32_t j = 0; j < d; j++)
+                    km->v[(size_t)k * d + j] = init2;
+                km->cand_used[b] = 0;
+                km->cand_count--;
+                total_to(km, t);
+                km->tot += 1.0 - w_old;
+                if (km->tot < 0)
+                    km->tot = 0;
+                km->n[k] = 1.0;
+                if (t > km->last[k])
+                    km->last[k] = t;
+                refresh_cluster(km, k);
+                km->retired++;
+                slots[out++] = k;
+            }
+        }
+        refresh_expire(km, k);
+    }
+    return out;
+}
+
+void kmeans_save(const kmeans *km, snap_writer *w)
+{
+    const kmeans_params *p = &km->p;
+    size_t kd = (size_t)p->k * p->dim;
+    uint32_t cn = p->candidates ? p->candidates : 1;
+    snap_put_tag(w, "KMNS");
+    snap_put_u32(w, p->dim);
+    snap_put_u32(w, p->k);
+    snap_put_u32(w, p->candidates);
+    snap_put_f64(w, p->half_life_days);
+    snap_put_f64(w, p->spread_floor);
+    snap_put_f64(w, p->spread_init);
+    snap_put_f64(w, p->retire_weight);
+    snap_put_u64(w, p->seed);
+    snap_put_u32(w, (uint32_t)km->seeded);
+    snap_put_u64(w, km->retired);
+    for (int i = 0; i < 4; i++)
+        snap_put_u64(w, km->r.s[i]);
+    snap_put_f64(w, km->tot);
+    snap_put_f64(w, km->tot_t);
+    snap_put_f64s(w, km->c, kd);
+    snap_put_f64s(w, km->v, kd);
+    snap_put_f64s(w, km->n, p->k);
+    snap_put_f64s(w, km->last, p->k);
+    snap_put_u32(w, km->cand_head);
+    snap_put_f64s(w, km->cand_z, (size_t)cn * p->dim);
+    snap_put_f64s(w, km->cand_score, cn);
+    snap_put_f64s(w, km->cand_t, cn);
+    snap_put_bytes(w, km->cand_used, cn);
+}
+
+int kmeans_load(kmeans *km, snap_reader *r)
+{
+    kmeans_params p = km->p;
+    snap_expect_tag(r, "KMNS");
+    uint32_t dim = snap_get_u32(r), k = snap_get_u32(r);
+    uint32_t cands = snap_get_u32(r);
+    if (r->err)
+        return r->err;
+    if (dim != p.dim || k != p.k || cands != p.candidates)
+        return CORE_EMISMATCH;
+    p.half_life_days = snap_get_f64(r);
+    p.spread_floor = snap_get_f64(r);
+    p.spread_init = snap_get_f64(r);
+    p.retire_weight = snap_get_f64(r);
+    p.seed = snap_get_u64(r);
+    int seeded = (int)snap_get_u32(r);
+    uint64_t retired = snap_get_u64(r);
+    rng rs;
+    for (int i = 0; i < 4; i++)
+        rs.s[i] = snap_get_u64(r);
+    double tot = snap_get_f64(r), tot_t = snap_get_f64(r);
+    if (r->err)
+        return r->err;
+    uint32_t cn = cands ? cands : 1;
+    size_t kd = (size_t)k * dim;
+    size_t need = (kd * 2 + (size_t)k * 2 + (size_t)cn * dim + 2u * cn) * 8 +
+                  4 + cn;
+    if (r->len - r->pos < need || !params_ok(&p)) {
+        r->err = CORE_EFORMAT;
+        return r->err;
+    }
+    km->p = p;
+    km->seeded = seeded;
+    km->retired = retired;
+    km->r = rs;
+    km->tot = tot;
+    km->tot_t = tot_t;
+    snap_get_f64s(r, km->c, kd);
+    snap_get_f64s(r, km->v, kd);
+    snap_get_f64s(r, km->n, k);
+    snap_get_f64s(r, km->last, k);
+    km->cand_head = snap_get_u32(r) % cn;
+    snap_get_f64s(r, km->cand_z, (size_t)cn * dim);
+    snap_get_f64s(r, km->cand_score, cn);
+    snap_get_f64s(r, km->cand_t, cn);
+    snap_get_bytes(r, km->cand_used, cn);
+    km->cand_count = 0;
+    for (uint32_t i = 0; i < cn; i++) {
+        km->cand_used[i] = km->cand_used[i] != 0 && cands != 0;
+        km->cand_count += km->cand_used[i];
+    }
+    km->next_expire = INFINITY;
+    for (uint32_t cc = 0; cc < k; cc++) {
+        refresh_cluster(km, cc);
+        refresh_expire(km, cc);
+    }
+    return r->err;
+}
+
+int kmeans_stream_fit(const double *X, const double *t, size_t n, uint32_t d,
+                      uint32_t k, double half_life_days, uint32_t warm_n,
+                      uint64_t seed, double *centers_out, int32_t *labels_out)
+{
+    if (!X || !centers_out || warm_n < k || warm_n > n)
+        return CORE_EINVAL;
+    kmeans_params p;
+    kmeans_params_default(&p, d, k);
+    p.half_life_days = half_life_days;
+    p.seed = seed;
+    int err;
+    kmeans *km = kmeans_new(&p, &err);
+    if (!km)
+        return err;
+    select_ws *ws = select_ws_new(warm_n, d, k, &err);
+    if (!ws)
+        goto out_km;
+    double tw = t ? t[warm_n - 1] : 0;
+    err = kmeans_seed(km, ws, X, warm_n, tw, 3, 3, NULL);
+    if (err < 0)
+        goto out_ws;
+    for (size_t i = warm_n; i < n; i++)
+        kmeans_observe(km, X + i * d, NULL, NULL, t ? t[i] : 0, NULL);
+    memcpy(centers_out, km->c, (size_t)k * d * sizeof(double));
+    if (labels_out)
+        for (size_t i = 0; i < n; i++)
+            labels_out[i] = kmeans_assign(km, X + i * d, NULL, NULL, NULL);
+    err = 0;
+out_ws:
+    select_ws_free(ws);
+out_km:
+    kmeans_free(km);
+    return err;
+}
