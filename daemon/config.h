@@ -178,6 +178,7 @@ typedef struct config_option {
     config_type type;
     size_t offset;         /* of the field in struct oddsky_config */
     size_t size;           /* of that field */
+    const char *field;     /* the C member, e.g. "model.k" (model_params_check) */
     const char *def;       /* default, in --set syntax */
     double min, max;       /* inclusive bounds (CONFIG_F_BOUNDS) */
     const char *const *enum_names; /* NULL-terminated (CONFIG_ENUM) */
