@@ -1,0 +1,369 @@
+/*
+ * density.c - residual histograms and the mixture log density.
+ *
+ * Layout: histogram (k, j) owns nb = bins + 2 consecutive counts (double)
+ * and table entries (float), bin 0 the left tail and bin nb-1 the right.
+ * Counts are in the clock's scaled units (each insert adds g); the tables
+ * hold, with c = count / g and T = total / g at build time,
+ *   inner bin:  log(c_b + P phi_b) - log(width)
+ *   tail bin:   log(c_b + P Q) - log Q - log sqrt(2 pi)
+ * and lden[k, j] = log(T + P), so log h = tab[b] - lden (- r^2/2 in the
+ * tails).  c/g is unchanged by the clock's renormalisation, so a renorm
+ * scales counts and built_g alike and leaves the tables valid.
+ */
+#include "density.h"
+
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "decay.h"
+#include "err.h"
+#include "select.h"
+
+struct density {
+    density_params p;
+    uint32_t nb;
+    double width, inv_width, tail_q, log_norm_tail;
+    double *phi;       /* nb: normal mass per bin */
+    double *count;     /* k x dim x nb */
+    double *total;     /* k x dim */
+    float *tab;        /* k x dim x nb */
+    double *lden;      /* k x dim */
+    double *built_g;   /* k: clock g when k's tables were built */
+    decay_clock clk;
+};
+
+void density_params_default(density_params *p, uint32_t dim, uint32_t k)
+{
+    p->dim = dim;
+    p->k = k;
+    p->bins = 24;
+    p->range = 6;
+    p->pseudo = 20;
+    p->half_life_days = 7;
+    p->refresh_tol = 0.01;
+}
+
+static int params_ok(const density_params *p)
+{
+    return p && p->dim >= 1 && p->dim <= (1u << 16) && p->k >= 1 &&
+           p->k <= (1u << 16) && p->bins >= 2 && p->bins <= 4096 &&
+           isfinite(p->range) && p->range > 0 && isfinite(p->pseudo) &&
+           p->pseudo >= 0 && isfinite(p->half_life_days) &&
+           p->half_life_days >= 0 && isfinite(p->refresh_tol) &&
+           p->refresh_tol > 0;
+}
+
+static double norm_cdf(double x) { return 0.5 * erfc(-x / M_SQRT2); }
+
+/* Rebuild every table of cluster k at the clock's current g. */
+static void build_cluster(density *ds, uint32_t k)
+{
+    uint32_t d = ds->p.dim, nb = ds->nb;
+    double g = decay_unit(&ds->clk), P = ds->p.pseudo;
+    double lw = log(ds->width);
+    for (uint32_t j = 0; j < d; j++) {
+        size_t h = (size_t)k * d + j;
+        const double *c = ds->count + h * nb;
+        float *tab = ds->tab + h * nb;
+        double T = ds->total[h] / g;
+        ds->lden[h] = log(T + P);
+        for (uint32_t b = 0; b < nb; b++) {
+            double num = log(c[b] / g + P * ds->phi[b]);
+            tab[b] = (float)(num - ((b == 0 || b == nb - 1)
+                                        ? ds->log_norm_tail : lw));
+        }
+    }
+    ds->built_g[k] = g;
+}
+
+density *density_new(const density_params *p, int *err)
+{
+    int e = CORE_EINVAL;
+    density *ds = NULL;
+    if (!params_ok(p))
+        goto fail;
+    e = CORE_ENOMEM;
+    ds = calloc(1, sizeof *ds);
+    if (!ds)
+        goto fail;
+    ds->p = *p;
+    ds->nb = p->bins + 2;
+    size_t hk = (size_t)p->k * p->dim;
+    ds->phi = calloc(ds->nb, sizeof(double));
+    ds->count = calloc(hk * ds->nb, sizeof(double));
+    ds->total = calloc(hk, sizeof(double));
+    ds->tab = calloc(hk * ds->nb, sizeof(float));
+    ds->lden = calloc(hk, sizeof(double));
+    ds->built_g = calloc(p->k, sizeof(double));
+    if (!ds->phi || !ds->count || !ds->total || !ds->tab || !ds->lden ||
+        !ds->built_g)
+        goto fail_arrays;
+    ds->width = 2 * p->range / p->bins;
+    ds->inv_width = 1.0 / ds->width;
+    ds->tail_q = 0.5 * erfc(p->range / M_SQRT2);
+    ds->log_norm_tail = log(ds->tail_q) + 0.5 * log(2 * M_PI);
+    ds->phi[0] = ds->tail_q;
+    ds->phi[ds->nb - 1] = ds->tail_q;
+    for (uint32_t b = 0; b < p->bins; b++) {
+        double lo = -p->range + b * ds->width;
+        ds->phi[b + 1] = norm_cdf(lo + ds->width) - norm_cdf(lo);
+    }
+    decay_init(&ds->clk, p->half_life_days);
+    for (uint32_t k = 0; k < p->k; k++)
+        build_cluster(ds, k);
+    if (err)
+        *err = 0;
+    return ds;
+fail_arrays:
+    density_free(ds);
+fail:
+    if (err)
+        *err = e;
+    return NULL;
+}
+
+void density_free(density *ds)
+{
+    if (!ds)
+        return;
+    free(ds->phi);
+    free(ds->count);
+    free(ds->total);
+    free(ds->tab);
+    free(ds->lden);
+    free(ds->built_g);
+    free(ds);
+}
+
+size_t density_bytes(const density *ds)
+{
+    size_t hk = (size_t)ds->p.k * ds->p.dim;
+    return sizeof *ds + ds->nb * sizeof(double) +
+           hk * ds->nb * (sizeof(double) + sizeof(float)) +
+           hk * 2 * sizeof(double) + ds->p.k * sizeof(double);
+}
+
+const density_params *density_get_params(const density *ds) { return &ds->p; }
+
+static inline void maybe_rebuild(density *ds, uint32_t k)
+{
+    if (decay_unit(&ds->clk) > ds->built_g[k] * (1.0 + ds->p.refresh_tol))
+        build_cluster(ds, k);
+}
+
+static inline uint32_t bin_of(const density *ds, double r)
+{
+    if (!(r >= -ds->p.range))
+        return 0; /* NaN residuals cannot reach here: z is checked */
+    if (r >= ds->p.range)
+        return ds->nb - 1;
+    uint32_t b = (uint32_t)((r + ds->p.range) * ds->inv_width);
+    return 1 + (b < ds->p.bins ? b : ds->p.bins - 1);
+}
+
+double density_log_cluster(density *ds, const kmeans *km, uint32_t k,
+                           const double *z, const uint8_t *miss)
+{
+    uint32_t d = ds->p.dim, nb = ds->nb, obs = 0;
+    maybe_rebuild(ds, k);
+    kmeans_cluster_view v;
+    kmeans_cluster(km, k, &v);
+    const float *tab = ds->tab + (size_t)k * d * nb;
+    const double *lden = ds->lden + (size_t)k * d;
+    double sum = 0;
+    for (uint32_t j = 0; j < d; j++, tab += nb) {
+        if ((miss && miss[j]) || !isfinite(z[j]))
+            continue;
+        obs++;
+        double r = (z[j] - v.centroid[j]) * v.inv_spread[j];
+        uint32_t b = bin_of(ds, r);
+        double term = (double)tab[b] - lden[j] - v.log_spread[j];
+        if (b == 0 || b == nb - 1)
+            term -= 0.5 * r * r;
+        sum += term;
+    }
+    if (obs == 0)
+        return 0;
+    return obs == d ? sum : sum * ((double)d / (double)obs);
+}
+
+double density_log(density *ds, const kmeans *km, const double *z,
+                   const uint8_t *miss, const uint32_t *idx, uint32_t m,
+                   double t)
+{
+    if (m == 0)
+        return NAN;
+    uint32_t obs = 0;
+    for (uint32_t j = 0; j < ds->p.dim; j++)
+        obs += !((miss && miss[j]) || !isfinite(z[j]));
+    if (obs == 0)
+        return 0;
+    double tot = kmeans_total_weight(km, t);
+    double log_tot = tot > 0 ? log(tot) : 0;
+    enum { MAXM = 64 };
+    double a[MAXM];
+    if (m > MAXM)
+        m = MAXM;
+    double mx = -INFINITY;
+    for (uint32_t i = 0; i < m; i++) {
+        a[i] = kmeans_log_weight(km, idx[i], t) - log_tot +
+               density_log_cluster(ds, km, idx[i], z, miss);
+        if (a[i] > mx)
+            mx = a[i];
+    }
+    if (mx == -INFINITY)
+        return -INFINITY;
+    double s = 0;
+    for (uint32_t i = 0; i < m; i++)
+        s += exp(a[i] - mx);
+    return mx + log(s);
+}
+
+void density_update(density *ds, const kmeans *km, uint32_t k,
+                    const double *z, const uint8_t *miss, double t)
+{
+    uint32_t d = ds->p.dim, nb = ds->nb;
+    double f = decay_advance(&ds->clk, t);
+    if (f != 1.0) {
+        size_t hk = (size_t)ds->p.k * d;
+        for (size_t i = 0; i < hk * nb; i++)
+            ds->count[i] *= f;
+        for (size_t i = 0; i < hk; i++)
+            ds->total[i] *= f;
+        for (uint32_t c = 0; c < ds->p.k; c++)
+            ds->built_g[c] *= f;
+    }
+    double g = decay_unit(&ds->clk), P = ds->p.pseudo;
+    int rebuild = g > ds->built_g[k] * (1.0 + ds->p.refresh_tol);
+    kmeans_cluster_view v;
+    kmeans_cluster(km, k, &v);
+    double lw = log(ds->width);
+    for (uint32_t j = 0; j < d; j++) {
+        if ((miss && miss[j]) || !isfinite(z[j]))
+            continue;
+        size_t h = (size_t)k * d + j;
+        double r = (z[j] - v.centroid[j]) * v.inv_spread[j];
+        uint32_t b = bin_of(ds, r);
+        double *c = ds->count + h * nb;
+        c[b] += g;
+        ds->total[h] += g;
+        if (rebuild)
+            continue;
+        double num = log(c[b] / g + P * ds->phi[b]);
+        ds->tab[h * nb + b] = (float)(num - ((b == 0 || b == nb - 1)
+                                                 ? ds->log_norm_tail : lw));
+        ds->lden[h] = log(ds->total[h] / g + P);
+    }
+    if (rebuild)
+        build_cluster(ds, k);
+}
+
+void density_reset(density *ds, uint32_t k)
+{
+    size_t d = ds->p.dim, nb = ds->nb;
+    memset(ds->count + (size_t)k * d * nb, 0, d * nb * sizeof(double));
+    memset(ds->total + (size_t)k * d, 0, d * sizeof(double));
+    build_cluster(ds, k);
+}
+
+double density_mass(const density *ds, uint32_t k, uint32_t j)
+{
+    return decay_read(&ds->clk, ds->total[(size_t)k * ds->p.dim + j]);
+}
+
+double density_bin_prob(const density *ds, uint32_t k, uint32_t j,
+                        uint32_t b)
+{
+    size_t h = (size_t)k * ds->p.dim + j;
+    double g = decay_unit(&ds->clk), P = ds->p.pseudo;
+    double T = ds->total[h] / g;
+    if (!(T + P > 0))
+        return ds->phi[b];
+    return (ds->count[h * ds->nb + b] / g + P * ds->phi[b]) / (T + P);
+}
+
+size_t density_residuals(const kmeans *km, const double *Z, size_t n,
+                         const int32_t *labels, double *out, size_t cap)
+{
+    const kmeans_params *p = kmeans_get_params(km);
+    size_t w = 0;
+    for (size_t i = 0; i < n && w < cap; i++) {
+        if (labels[i] < 0 || (uint32_t)labels[i] >= p->k)
+            continue;
+        kmeans_cluster_view v;
+        kmeans_cluster(km, (uint32_t)labels[i], &v);
+        for (uint32_t j = 0; j < p->dim && w < cap; j++) {
+            double z = Z[i * p->dim + j];
+            if (isfinite(z))
+                out[w++] = (z - v.centroid[j]) * v.inv_spread[j];
+        }
+    }
+    return w;
+}
+
+int density_grid_check(const density *ds, const double *resid, size_t n,
+                       double *scratch, density_grid_report *rep)
+{
+    if (n < 4 || !resid || !scratch || !rep)
+        return CORE_EINVAL;
+    rep->grid_width = ds->width;
+    rep->fd_width = select_fd_width(resid, n, scratch);
+    rep->scott_width = select_scott_width(resid, n);
+    rep->n = n;
+    return 0;
+}
+
+void density_save(const density *ds, snap_writer *w)
+{
+    size_t hk = (size_t)ds->p.k * ds->p.dim;
+    snap_put_tag(w, "DENS");
+    snap_put_u32(w, ds->p.dim);
+    snap_put_u32(w, ds->p.k);
+    snap_put_u32(w, ds->p.bins);
+    snap_put_f64(w, ds->p.range);
+    snap_put_f64(w, ds->p.pseudo);
+    snap_put_f64(w, ds->p.half_life_days);
+    snap_put_f64(w, ds->p.refresh_tol);
+    decay_save(&ds->clk, w);
+    snap_put_f64s(w, ds->count, hk * ds->nb);
+    snap_put_f64s(w, ds->total, hk);
+    snap_put_f32s(w, ds->tab, hk * ds->nb);
+    snap_put_f64s(w, ds->lden, hk);
+    snap_put_f64s(w, ds->built_g, ds->p.k);
+}
+
+int density_load(density *ds, snap_reader *r)
+{
+    snap_expect_tag(r, "DENS");
+    uint32_t dim = snap_get_u32(r), k = snap_get_u32(r), bins = snap_get_u32(r);
+    if (r->err)
+        return r->err;
+    if (dim != ds->p.dim || k != ds->p.k || bins != ds->p.bins)
+        return CORE_EMISMATCH;
+    density_params p = ds->p;
+    p.range = snap_get_f64(r);
+    p.pseudo = snap_get_f64(r);
+    p.half_life_days = snap_get_f64(r);
+    p.refresh_tol = snap_get_f64(r);
+    decay_clock clk;
+    decay_load(&clk, r);
+    size_t hk = (size_t)k * dim, nb = bins + 2;
+    size_t need = hk * nb * 12 + hk * 16 + (size_t)k * 8;
+    if (r->err)
+        return r->err;
+    if (!params_ok(&p) || p.range != ds->p.range ||
+        r->len - r->pos < need) {
+        r->err = p.range != ds->p.range ? CORE_EMISMATCH : CORE_EFORMAT;
+        return r->err;
+    }
+    ds->p = p;
+    ds->clk = clk;
+    snap_get_f64s(r, ds->count, hk * nb);
+    snap_get_f64s(r, ds->total, hk);
+    snap_get_f32s(r, ds->tab, hk * nb);
+    snap_get_f64s(r, ds->lden, hk);
+    snap_get_f64s(r, ds->built_g, k);
+    return r->err;
+}
