@@ -404,18 +404,24 @@ static const char *suggest(const char *path)
     unsigned best_d = 1000;
     const char *key = last_segment(path);
     size_t klen = strlen(key);
-    unsigned limit = klen <= 3 ? 1 : (klen <= 8 ? 2 : 3);
+    unsigned limit = klen <= 2 ? 1 : (klen <= 5 ? 2 : 3);
 
     for (size_t i = 0; i < N_OPTIONS; i++) {
         unsigned d1 = levenshtein(path, options[i].name);
         unsigned d2 = levenshtein(key, last_segment(options[i].name)) + 1;
         unsigned d = d1 < d2 ? d1 : d2;
+        /* "kafka.topics" -> "kafka.input_topics": a part of the name, in
+         * the same section. */
+        if (klen >= 4 && strstr(last_segment(options[i].name), key) != NULL &&
+            strncmp(options[i].name, path, (size_t)(key - path)) == 0 && d > 1)
+            d = 1;
         if (d < best_d) {
             best_d = d;
             best = options[i].name;
         }
     }
-    return best_d <= limit + 1 ? best : NULL;
+    /* Close enough, and not a rewrite of the whole key. */
+    return best_d <= limit && best_d < klen ? best : NULL;
 }
 
 static void unknown_option(config_errs *errs, const char *path)

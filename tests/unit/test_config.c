@@ -401,6 +401,10 @@ static void test_unknown_key_hint(void **state)
     expect_error(&f->errs, "kafka.input_topic", "unknown option (did you mean \"kafka.input_topics\"?)");
     assert_int_equal(load(f, "{\"status\": {\"tokn\": \"x\"}}"), -1);
     expect_error(&f->errs, "status.tokn", "unknown option (did you mean \"status.token\"?)");
+    assert_int_equal(load(f, "{\"kafka\": {\"topics\": [\"a\"]}}"), -1);
+    expect_error(&f->errs, "kafka.topics", "unknown option (did you mean \"kafka.input_topics\"?)");
+    assert_int_equal(load(f, "{\"x\": {\"y\": 1}}"), -1);
+    expect_error(&f->errs, "x", "unknown option (see oddsky check-config --defaults)");
     assert_int_equal(load(f, "{\"zzzqqqxxx\": 1}"), -1);
     expect_error(&f->errs, "zzzqqqxxx", "unknown option (see oddsky check-config --defaults)");
     /* Every error of a file is listed, not just the first. */
