@@ -10,6 +10,7 @@ sent by a producer to a topic partition are appended in the order they are
 sent, and a consumer sees them in the order they are stored; every message
 gets the next offset of its partition.
 """
+import os
 import subprocess
 
 import pytest
@@ -167,3 +168,34 @@ def test_script_topic_create(kafka_local, broker):
                    check=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE, timeout=120)
     ku.wait_until(lambda: ku.topic_exists(broker, name), 30, what="topic to appear")
     assert ku.topic_partitions(broker, name) == [0, 1, 2]
+
+
+def test_bench_relay_relays_exactly_and_commits(broker, new_topic):
+    # The bare relay of tests/bench (built by `make test` / `make bench`):
+    # every input message appears once on the output with the same key and
+    # bytes, and the group's committed offsets reach the end of the input.
+    # source: Apache Kafka documentation, committed position = next offset
+    # to read; librdkafka INTRODUCTION.md, at-least-once with manual store.
+    relay = os.path.join(os.path.dirname(ku.oddsky_binary()), "tests", "bench", "relay")
+    if not os.access(relay, os.X_OK):
+        pytest.fail(f"{relay} is missing: build it with "
+                    f"make BUILD=... {os.path.relpath(relay, ku.TOP)}", pytrace=False)
+    src = new_topic(PARTITIONS, prefix="relay-in")
+    dst = new_topic(PARTITIONS, prefix="relay-out")
+    n = 20000
+    payloads = [f"{i:08d}:".encode() + bytes([i % 256]) * 40 for i in range(n)]
+    keys = [f"k{i % 101}".encode() for i in range(n)]
+    ku.produce(broker, src, payloads, keys=keys)
+    group = ku.unique_name("relay")
+    p = subprocess.run([relay, "-b", broker, "-i", src, "-o", dst, "-n", str(n),
+                        "-g", group, "-t", "120"],
+                       stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, timeout=180)
+    assert p.returncode == 0, p.stderr
+    lines = dict(line.split("=", 1) for line in p.stdout.split())
+    assert int(lines["relay_messages"]) == n
+    assert float(lines["relay_per_s"]) > 0
+
+    out = ku.consume_all(broker, dst, n=None, timeout_s=60)
+    assert len(out) == n
+    assert sorted((r.key, r.value) for r in out) == sorted(zip(keys, payloads))
+    assert ku.committed_offsets(broker, group, src) == ku.end_offsets(broker, src)
