@@ -80,6 +80,9 @@ struct featmap {
     char bands[FEATMAP_MAX_BANDS][FM_BAND_MAX];
     fm_path slot[FM_SLOTS];
     fm_path elem[EL_COUNT_];
+    /* Numeric root slots reading the same path share one read: canon[i]
+     * is the lowest slot with slot i's path (i itself when first). */
+    uint16_t canon[FM_SLOTS];
 };
 
 typedef struct av_step {
@@ -649,6 +652,21 @@ featmap *featmap_new(const json_t *spec, char *err, size_t err_len)
             }
             ft->ref_a = earlier_feature(fs, j, json_string_value(json_array_get(x, 0)));
             ft->ref_b = earlier_feature(fs, j, json_string_value(json_array_get(x, 1)));
+        }
+    }
+    for (uint32_t i = 0; i < FM_SLOTS; i++) {
+        fm->canon[i] = (uint16_t)i;
+        if (i < SLOT_TIME || i == SLOT_CUR_B || i == SLOT_HIST ||
+            fm->slot[i].n == 0)
+            continue;
+        for (uint32_t k = SLOT_TIME; k < i; k++) {
+            if (k == SLOT_CUR_B || k == SLOT_HIST || fm->slot[k].n == 0)
+                continue;
+            if (fm->slot[k].n == fm->slot[i].n &&
+                !memcmp(fm->slot[k].buf, fm->slot[i].buf, sizeof fm->slot[k].buf)) {
+                fm->canon[i] = (uint16_t)k;
+                break;
+            }
         }
     }
     return fm;
@@ -1308,6 +1326,11 @@ int featmap_extract_avro(const featmap *fm, const featmap_plan *pl,
     for (uint32_t i = SLOT_TIME; i < FM_SLOTS; i++) {
         if (i == SLOT_CUR_B || i == SLOT_HIST)
             continue;
+        if (fm->canon[i] != i) {
+            s->raw[i] = s->raw[fm->canon[i]];
+            s->raw_st[i] = s->raw_st[fm->canon[i]];
+            continue;
+        }
         double x = NAN;
         int st = RAW_MISSING;
         if (pl->slot[i].ok && av_walk(root, &pl->slot[i], &v))
@@ -1380,6 +1403,11 @@ int featmap_extract_json(const featmap *fm, const json_t *root,
     for (uint32_t i = SLOT_TIME; i < FM_SLOTS; i++) {
         if (i == SLOT_CUR_B || i == SLOT_HIST)
             continue;
+        if (fm->canon[i] != i) {
+            s->raw[i] = s->raw[fm->canon[i]];
+            s->raw_st[i] = s->raw_st[fm->canon[i]];
+            continue;
+        }
         double x = NAN;
         int st = fm->slot[i].n ? js_number(js_walk(root, &fm->slot[i]), &x)
                                : RAW_MISSING;
