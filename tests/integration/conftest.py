@@ -8,7 +8,10 @@ test that needs it, with the broker's log in the message: these tests are
 never skipped.  `broker` is its bootstrap address; `new_topic` creates
 uniquely named topics.
 """
+import glob
 import os
+import shutil
+import subprocess
 import sys
 
 import pytest
@@ -19,8 +22,24 @@ import kafka_util  # noqa: E402
 _timings = {}
 
 
+def _reap_stale_brokers():
+    """Stop brokers left by an earlier session that was killed before its
+    teardown (its run dir is named after its pid, which is gone)."""
+    for d in glob.glob(os.path.join(kafka_util.TOP, "build", "kafka", "it-*")):
+        try:
+            pid = int(d.rsplit("-", 1)[1])
+        except ValueError:
+            continue
+        if pid == os.getpid() or os.path.exists(f"/proc/{pid}"):
+            continue
+        subprocess.run([kafka_util.KAFKA_LOCAL, "down", "--dir", d],
+                       stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, timeout=120)
+        shutil.rmtree(d, ignore_errors=True)
+
+
 @pytest.fixture(scope="session")
 def kafka_local(request):
+    _reap_stale_brokers()
     run_dir = os.path.join(kafka_util.TOP, "build", "kafka", f"it-{os.getpid()}")
     kl = kafka_util.KafkaLocal(run_dir)
     try:
