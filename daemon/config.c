@@ -24,15 +24,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
-#include "log.h"
-
-/* The feature map's validator lives in daemon/featmap.c.  Until that
- * module is in the tree, the weak definition at the end of this file
- * stands in (it accepts everything); the real one replaces it at link. */
-int featmap_validate(const json_t *spec,
-                     void (*err)(void *ctx, const char *json_path,
-                                 const char *rule),
-                     void *ctx);
+#include "featmap.h"
 
 /* core/model.c may not be linked into every binary that links config.o
  * (unit tests of other modules): a weak reference keeps those links
@@ -1737,23 +1729,7 @@ void config_print_defaults(FILE *out)
         fprintf(out, "%-*s  %-11s  %-22s  %-26s  %s\n", (int)wname, o->name,
                 config_type_name(o->type), def, range,
                 (o->flags & CONFIG_F_LIVE) ? "live" : "restart");
-        fprintf(out, "%-*s    %s%s%s\n", (int)wname, "", o->help,
-                (o->flags & CONFIG_F_SECRET) ? " [secret: masked in output]" : "",
-                (o->flags & CONFIG_F_RUN_REQ) ? "" : "");
+        fprintf(out, "%-*s    %s%s\n", (int)wname, "", o->help,
+                (o->flags & CONFIG_F_SECRET) ? " [secret: masked in output]" : "");
     }
-}
-
-/* ---- temporary stand-in ------------------------------------------------------ */
-
-/* TEMPORARY: accepts every feature map until daemon/featmap.c provides the
- * real featmap_validate(), which overrides this weak definition at link
- * time.  Remove once featmap.c is in the tree. */
-__attribute__((weak)) int featmap_validate(const json_t *spec,
-                                           void (*err)(void *ctx, const char *json_path,
-                                                       const char *rule),
-                                           void *ctx)
-{
-    (void)err;
-    (void)ctx;
-    return json_is_object(spec) ? 0 : -1;
 }
