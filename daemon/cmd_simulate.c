@@ -48,6 +48,7 @@ typedef struct sim_opts {
 
 typedef struct kafka_out {
     rd_kafka_t *rk;
+    volatile int quiet;  /* while probing: our own message says it all */
     uint64_t delivered, failed;
     char first_error[256];
 } kafka_out;
@@ -313,6 +314,13 @@ static void on_delivery(rd_kafka_t *rk, const rd_kafka_message_t *m, void *opaqu
     }
 }
 
+static void on_log(const rd_kafka_t *rk, int level, const char *fac, const char *buf)
+{
+    kafka_out *k = rd_kafka_opaque(rk);
+    if (level <= 4 && !(k && k->quiet))
+        fprintf(stderr, "oddsky simulate: kafka %s: %s\n", fac, buf);
+}
+
 static int kafka_open(kafka_out *k, const sim_opts *o)
 {
     char errstr[512];
@@ -335,6 +343,8 @@ static int kafka_open(kafka_out *k, const sim_opts *o)
     }
     rd_kafka_conf_set_dr_msg_cb(conf, on_delivery);
     rd_kafka_conf_set_opaque(conf, k);
+    rd_kafka_conf_set_log_cb(conf, on_log);
+    k->quiet = 1;
     k->rk = rd_kafka_new(RD_KAFKA_PRODUCER, conf, errstr, sizeof errstr);
     if (!k->rk) {
         fprintf(stderr, "oddsky simulate: cannot create a Kafka producer: %s\n", errstr);
@@ -352,6 +362,7 @@ static int kafka_open(kafka_out *k, const sim_opts *o)
         return EX_UNAVAILABLE;
     }
     rd_kafka_metadata_destroy(md);
+    k->quiet = 0;
     return 0;
 }
 
