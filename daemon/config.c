@@ -25,6 +25,7 @@
 #include <unistd.h>
 
 #include "featmap.h"
+#include "log.h"
 
 /* core/model.c may not be linked into every binary that links config.o
  * (unit tests of other modules): a weak reference keeps those links
@@ -41,6 +42,13 @@ extern int model_params_check(const model_params *p, const char **field,
 
 #define CONFIG_FILE_MAX_BYTES (16u << 20)
 
+/* log.level and log.format hold log_level / log_format values directly. */
+_Static_assert(LOG_LEVEL_ERROR == 0 && LOG_LEVEL_WARN == 1 && LOG_LEVEL_INFO == 2 &&
+                   LOG_LEVEL_DEBUG == 3 && LOG_FORMAT_TEXT == 0 && LOG_FORMAT_JSON == 1,
+               "level_names[] and logfmt_names[] follow log.h's enums");
+_Static_assert(MODEL_SCORE_DENSITY == 0 && MODEL_SCORE_SPACE == 1 && MODEL_SCORE_COMBINED == 2 &&
+                   MODEL_FLAG_ALPHA == 0 && MODEL_FLAG_BUDGET == 1,
+               "score_names[] and policy_names[] follow model.h's enums");
 _Static_assert(sizeof(model_score_kind) == sizeof(int), "enum stored as int");
 _Static_assert(sizeof(model_flag_policy) == sizeof(int), "enum stored as int");
 
@@ -312,7 +320,9 @@ static int is_section(const char *path)
 
 static void fmt_num(char *buf, size_t n, double v)
 {
-    if (v == floor(v) && fabs(v) < 1e16)
+    if (v >= 9223372036854775807.0)
+        snprintf(buf, n, "9223372036854775807"); /* INT64_MAX, the seed's bound */
+    else if (v == floor(v) && fabs(v) < 1e16)
         snprintf(buf, n, "%.0f", v);
     else
         snprintf(buf, n, "%g", v);
