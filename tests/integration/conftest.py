@@ -6,11 +6,13 @@ meets a broker a user started with `make kafka-up`; it is always stopped
 and its data deleted at the end.  A broker that cannot start fails every
 test that needs it, with the broker's log in the message: these tests are
 never skipped.  `broker` is its bootstrap address; `new_topic` creates
-uniquely named topics.
+uniquely named topics; `oddsky` starts the daemon and kills what is left
+at the end of the test.
 """
 import glob
 import os
 import shutil
+import signal
 import subprocess
 import sys
 
@@ -87,3 +89,21 @@ def pytest_terminal_summary(terminalreporter):
     for name, secs in _timings.items():
         if secs is not None:
             terminalreporter.write_line(f"{name}: {secs:.1f} s")
+
+
+@pytest.fixture
+def oddsky(tmp_path):
+    """oddsky(config_dict, args=(), **kw) -> Popen of `oddsky run` in a work
+    dir under tmp_path (see kafka_util.start_oddsky); any daemon still
+    running at the end of the test is killed."""
+    procs = []
+
+    def start(config, args=(), **kw):
+        kw.setdefault("workdir", str(tmp_path / f"oddsky-{len(procs)}"))
+        proc = kafka_util.start_oddsky(config, args, **kw)
+        procs.append(proc)
+        return proc
+    yield start
+    for proc in procs:
+        if proc.poll() is None:
+            kafka_util.stop_oddsky(proc, signal.SIGKILL, timeout_s=10)
