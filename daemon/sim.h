@@ -147,7 +147,7 @@ const char *sim_schema_json(void);
 /* --- encoders: each returns the number of bytes written, or -1 when cap
  * is too small (nothing useful is left in buf then).  None allocates. --- */
 
-#define SIM_JSON_MAX 6144u       /* enough for any packet as JSON */
+#define SIM_JSON_MAX 8192u       /* enough for any packet as JSON */
 #define SIM_AVRO_MAX 2048u       /* enough for any bare Avro datum */
 #define SIM_CONTAINER_MAX 8192u  /* enough for a one-packet container */
 

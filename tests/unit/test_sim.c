@@ -308,6 +308,36 @@ static void test_history_bound_small(void **state)
     check_order_and_history(5);
 }
 
+static void test_full_history_encodes(void **state)
+{
+    (void)state;
+    /* The largest history (64 points, a 200-day horizon) fits the
+     * documented buffer sizes of every encoder. */
+    sim_params p;
+    sim_params_default(&p);
+    p.history_max = SIM_HISTORY_CAP;
+    p.history_days = 200.0;
+    p.n_fields = 50;
+    sim *s = sim_new(&p, NULL, 0);
+    assert_non_null(s);
+    static sim_packet pk;
+    static char js[SIM_JSON_MAX];
+    static uint8_t av[SIM_AVRO_MAX + 5], cont[SIM_CONTAINER_MAX];
+    uint8_t sync[16] = {0};
+    unsigned max_hist = 0;
+    for (int i = 0; i < 150000; i++) {
+        sim_next(s, &pk);
+        if (pk.n_hist < max_hist)
+            continue;
+        max_hist = pk.n_hist;
+        assert_true(sim_encode_json(&pk, js, sizeof js) > 0);
+        assert_true(sim_encode_schema_id(&pk, 1, av, sizeof av) > 0);
+        assert_true(sim_encode_container(&pk, sync, cont, sizeof cont) > 0);
+    }
+    assert_int_equal(max_hist, SIM_HISTORY_CAP);
+    sim_free(s);
+}
+
 static void test_population_rates(void **state)
 {
     (void)state;
@@ -708,6 +738,7 @@ int main(void)
         cmocka_unit_test(test_determinism),
         cmocka_unit_test(test_order_and_history),
         cmocka_unit_test(test_history_bound_small),
+        cmocka_unit_test(test_full_history_encodes),
         cmocka_unit_test(test_population_rates),
         cmocka_unit_test(test_bazin_populations_brighten_then_fade),
         cmocka_unit_test(test_schema_file_matches),
