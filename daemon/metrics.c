@@ -250,16 +250,25 @@ metrics_family *metrics_find(metrics_registry *r, const char *name)
     return NULL;
 }
 
-/* Does a name collide with one a histogram family renders? */
-static int collides(metrics_registry *r, const char *name)
+/* Does a new family's name collide with an existing one, counting the
+ * _bucket/_sum/_count lines that histograms render (both ways round)? */
+static int collides(metrics_registry *r, const char *name, metrics_kind kind)
 {
+    static const char *const sfx[] = {"_bucket", "_sum", "_count"};
     if (metrics_find(r, name))
         return 1;
+    if (kind == METRICS_HISTOGRAM) {
+        char full[METRICS_MAX_NAME + 8];
+        for (size_t k = 0; k < 3; k++) {
+            snprintf(full, sizeof full, "%s%s", name, sfx[k]);
+            if (metrics_find(r, full))
+                return 1;
+        }
+    }
     for (uint32_t i = 0; i < r->n_fam; i++) {
         const metrics_family *f = &r->fam[i];
         if (f->kind != METRICS_HISTOGRAM)
             continue;
-        static const char *const sfx[] = {"_bucket", "_sum", "_count"};
         for (size_t k = 0; k < 3; k++) {
             size_t n = strlen(f->name);
             if (strncmp(name, f->name, n) == 0 && strcmp(name + n, sfx[k]) == 0)
@@ -292,7 +301,7 @@ metrics_family *metrics_register(metrics_registry *r, const metrics_spec *s,
     if (s->kind != METRICS_COUNTER && s->kind != METRICS_GAUGE &&
         s->kind != METRICS_HISTOGRAM)
         return fail(err, err_len, name, "unknown kind"), NULL;
-    if (collides(r, name))
+    if (collides(r, name, s->kind))
         return fail(err, err_len, name, "duplicate name"), NULL;
     if (s->kind == METRICS_GAUGE && s->windowed)
         return fail(err, err_len, name, "gauges keep no history"), NULL;

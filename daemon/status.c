@@ -369,7 +369,7 @@ static void dispatch(status_session *s, int keep_alive)
     }
     case ROUTE_STATUS: {
         json_t *doc = prov->status_json ? prov->status_json(prov->ctx) : NULL;
-        char *text = doc ? json_dumps(doc, JSON_COMPACT | JSON_REAL_PRECISION(10))
+        char *text = doc ? json_dumps(doc, JSON_COMPACT | JSON_REAL_PRECISION(15))
                          : NULL;
         json_decref(doc);
         if (!text) {

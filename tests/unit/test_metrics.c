@@ -244,15 +244,21 @@ static void test_registration_rules(void **state)
     /* h_count would collide with the histogram's own _count line. */
     metrics_spec clash = {.name = "h_count", .help = "", .kind = METRICS_GAUGE};
     assert_null(metrics_register(r, &clash, err, sizeof err));
+    /* ... and the other way round: a histogram over an existing x_sum. */
+    metrics_spec xsum = {.name = "x_sum", .help = "", .kind = METRICS_GAUGE};
+    assert_non_null(metrics_register(r, &xsum, err, sizeof err));
+    metrics_spec xh = {.name = "x", .help = "", .kind = METRICS_HISTOGRAM,
+                       .bounds = bounds, .n_bounds = 2};
+    assert_null(metrics_register(r, &xh, err, sizeof err));
     metrics_spec wg = {.name = "w", .help = "", .kind = METRICS_GAUGE, .windowed = 1};
     assert_null(metrics_register(r, &wg, err, sizeof err));
-    /* Capacity: 8 series in all, one used. */
+    /* Capacity: 8 series in all, two used. */
     static const char *const many[8] = {"a", "b", "c", "d", "e", "f", "g", "h"};
     metrics_spec big = {.name = "big_total", .help = "", .kind = METRICS_COUNTER,
                         .label = "l", .values = many, .n_values = 8};
     assert_null(metrics_register(r, &big, err, sizeof err));
     assert_non_null(strstr(err, "capacity"));
-    big.n_values = 7;
+    big.n_values = 6;
     assert_non_null(metrics_register(r, &big, err, sizeof err));
     assert_non_null(metrics_find(r, "big_total"));
     assert_null(metrics_find(r, "nope"));

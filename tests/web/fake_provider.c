@@ -25,7 +25,7 @@ static const char *const fake_partitions[] = {"0", "1", "2"};
 int fake_status_init(fake_status *f)
 {
     memset(f, 0, sizeof *f);
-    f->step_s = 2.5;
+    f->step_s = 2.0;
     f->healthy = 1;
     f->reg = metrics_new(NULL);
     if (!f->reg)
@@ -249,7 +249,7 @@ static json_t *fake_status_json(void *ctx)
     if (f->dump_dir) {
         char path[512];
         snprintf(path, sizeof path, "%s/%.1f.json", f->dump_dir, f->now_s);
-        json_dump_file(d, path, JSON_COMPACT | JSON_REAL_PRECISION(10));
+        json_dump_file(d, path, JSON_COMPACT | JSON_REAL_PRECISION(15));
     }
     return d;
 }

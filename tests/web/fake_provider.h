@@ -26,7 +26,7 @@ typedef struct fake_status {
     metrics_family *packets, *results, *flags, *dead, *errors, *latency, *lag;
     unsigned calls;       /* /status documents built */
     double now_s;         /* fake monotonic clock */
-    double step_s;        /* advance per /status call, 2.5 */
+    double step_s;        /* advance per /status call, 2 (whole seconds) */
     int healthy;          /* 1 unless a test says otherwise */
     int checkpoints;      /* POST /checkpoint calls that succeeded */
     const char *dump_dir; /* NULL: do not write served documents */
