@@ -12,7 +12,8 @@
  *
  * Invariants: cell[i] >= 0; fen holds the descending prefix structure of
  * cell; total = sum of all inserts (equal to the sum of cells up to
- * rounding); seen = 0 until the first score, first_time its time.
+ * rounding); lo_cell is the lowest non-empty cell (n when empty); seen = 0
+ * until the first score, first_time its time.
  */
 #include "calib.h"
 
@@ -34,6 +35,7 @@ struct calib {
     double first_time; /* event time of the first score */
     int seen;
     uint32_t n;        /* bins + 2 */
+    uint32_t lo_cell;  /* lowest non-empty natural cell, n when none */
     double *cell;      /* n */
     double *fen;       /* n + 1, 1-based */
 };
@@ -93,6 +95,7 @@ calib *calib_new(const calib_params *p, int *err)
     if (!c->cell)
         goto fail_cells;
     c->fen = c->cell + c->n;
+    c->lo_cell = c->n;
     c->amax = asinh(p->limit);
     c->w = 2 * c->amax / p->bins;
     c->inv_w = p->bins / (2 * c->amax);
@@ -188,6 +191,16 @@ static uint32_t cell_of(const calib *c, double s)
     return k + 1;
 }
 
+static void find_lo_cell(calib *c)
+{
+    c->lo_cell = c->n;
+    for (uint32_t i = 0; i < c->n; i++)
+        if (c->cell[i] > 0) {
+            c->lo_cell = i;
+            break;
+        }
+}
+
 void calib_advance(calib *c, double t_days)
 {
     double f = decay_advance(&c->clk, t_days);
@@ -197,6 +210,7 @@ void calib_advance(calib *c, double t_days)
         for (uint32_t i = 1; i <= c->n; i++)
             c->fen[i] *= f;
         c->total *= f;
+        find_lo_cell(c); /* a gap of ~1000 half-lives can empty cells */
     }
 }
 
@@ -212,6 +226,8 @@ int calib_observe(calib *c, double s, double t_days)
     double g = decay_unit(&c->clk);
     uint32_t i = cell_of(c, s);
     c->cell[i] += g;
+    if (i < c->lo_cell)
+        c->lo_cell = i;
     fen_add(c, fen_pos(c, i), g);
     c->total += g;
     return 0;
@@ -295,11 +311,18 @@ double calib_threshold(const calib *c)
     const uint32_t B = c->p.bins;
     if (c->cell[B + 1] >= target)
         return c->p.limit;
+    if (c->lo_cell == 0 && target > c->total - c->cell[0])
+        return -INFINITY; /* only the underflow cell reaches the target */
     double above;
     uint32_t pos = fen_search(c, target, &above);
-    if (pos > B + 1) /* only the underflow cell reaches the target */
-        return -INFINITY;
-    uint32_t i = c->n - pos; /* natural cell, 1..B */
+    uint32_t i = pos > B + 1 ? 0 : c->n - pos; /* natural cell */
+    if (i < c->lo_cell) {
+        /* q = 1, or rounding between the tree and the total: every score
+         * in the grid is in the tail */
+        if (c->lo_cell == 0)
+            return -INFINITY;
+        return calib_edge(c, c->lo_cell - 1);
+    }
     double m = c->cell[i];
     double frac = m > 0 ? (target - above) / m : 1.0;
     frac = frac < 0 ? 0 : frac > 1 ? 1 : frac;
@@ -401,6 +424,7 @@ int calib_load(calib *c, snap_reader *r)
         return r->err;
     if (!(c->total >= 0) || !isfinite(c->total))
         return CORE_EFORMAT;
+    find_lo_cell(c);
     for (uint32_t i = 0; i < c->n; i++)
         if (!(c->cell[i] >= 0) || !isfinite(c->cell[i]) ||
             !(c->fen[i + 1] >= 0) || !isfinite(c->fen[i + 1]))
