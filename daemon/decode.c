@@ -132,7 +132,8 @@ static void entry_free(dentry *e)
 }
 
 /* Entry for the schema text, created (and compiled) on a miss.  Returns
- * the index, or -1 when out of memory or the cache is full. */
+ * the index, PACKET_E_SCHEMA_CACHE_FULL, or PACKET_E_INTERNAL (out of
+ * memory). */
 static int32_t entry_for_text(decoder *d, const char *text, size_t len)
 {
     uint64_t fp = decoder_fingerprint64(text, len);
@@ -142,24 +143,24 @@ static int32_t entry_for_text(decoder *d, const char *text, size_t len)
             return (int32_t)i;
     }
     if (d->n_entries >= DECODER_MAX_SCHEMAS)
-        return -1;
+        return PACKET_E_SCHEMA_CACHE_FULL;
     if (d->n_entries == d->cap_entries) {
         size_t nc = d->cap_entries ? 2 * d->cap_entries : 8;
         dentry **ne = realloc(d->entries, nc * sizeof *ne);
         if (!ne)
-            return -1;
+            return PACKET_E_INTERNAL;
         d->entries = ne;
         d->cap_entries = nc;
     }
     dentry *e = calloc(1, sizeof *e);
     if (!e)
-        return -1;
+        return PACKET_E_INTERNAL;
     e->fp = fp;
     e->text_len = len;
     e->text = malloc(len + 1);
     if (!e->text) {
         free(e);
-        return -1;
+        return PACKET_E_INTERNAL;
     }
     memcpy(e->text, text, len);
     e->text[len] = '\0';
@@ -213,7 +214,7 @@ static int32_t entry_for_id(decoder *d, uint32_t id)
         entry = entry_for_text(d, text, len);
         free(text);
         if (entry < 0)
-            return PACKET_E_INTERNAL;
+            return entry;
     }
     if (entry < 0 && d->n_unknown >= DECODER_MAX_UNKNOWN)
         return PACKET_E_UNKNOWN_SCHEMA_ID; /* not remembered */
@@ -551,7 +552,7 @@ static int decode_container(decoder *d, const uint8_t *p, size_t n,
 
     int32_t ei = entry_for_text(d, (const char *)schema, schema_len);
     if (ei < 0)
-        return PACKET_E_INTERNAL;
+        return ei;
     dentry *e = d->entries[ei];
     if (e->bad)
         return PACKET_E_BAD_SCHEMA;

@@ -52,7 +52,7 @@
 #include "packet.h"
 
 #define DECODER_MAX_UNKNOWN 1024u
-#define DECODER_MAX_SCHEMAS 4096u
+#define DECODER_MAX_SCHEMAS 256u /* each holds a compiled plan, ~70 KiB */
 
 typedef struct decoder_opts {
     const char *schema_dir;         /* dir of <id>.avsc; NULL/"" = none */

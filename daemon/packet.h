@@ -47,7 +47,9 @@
       "source id absent, null or not a string or integer")                    \
     X(ID_TOO_LONG, -15, "id_too_long",                                        \
       "packet or source id longer than PACKET_ID_MAX - 1 bytes")              \
-    X(INTERNAL, -16, "internal", "out of memory or a library failure")
+    X(INTERNAL, -16, "internal", "out of memory or a library failure")       \
+    X(SCHEMA_CACHE_FULL, -17, "schema_cache_full",                            \
+      "a new writer schema while DECODER_MAX_SCHEMAS are cached")
 
 enum packet_reason {
     PACKET_OK = 0,
@@ -56,7 +58,7 @@ enum packet_reason {
 #undef PACKET_REASON_ENUM
 };
 
-#define PACKET_REASON_COUNT 16u /* entries in PACKET_REASON_MAP */
+#define PACKET_REASON_COUNT 17u /* entries in PACKET_REASON_MAP */
 
 /* Short name ("bad_json") of a reason code; "ok" for 0, "unknown" for a
  * value outside the map.  Never NULL. */

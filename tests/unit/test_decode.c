@@ -449,7 +449,7 @@ static void test_reason_names(void **state)
                         "unknown_schema_id");
     assert_string_equal(packet_reason_name(-999), "unknown");
     assert_int_equal(packet_reason_index(PACKET_E_EMPTY), 0);
-    assert_int_equal(packet_reason_index(PACKET_E_INTERNAL),
+    assert_int_equal(packet_reason_index(PACKET_E_SCHEMA_CACHE_FULL),
                      PACKET_REASON_COUNT - 1);
     for (int i = 1; i <= (int)PACKET_REASON_COUNT; i++)
         assert_true(strcmp(packet_reason_name(-i), "unknown") != 0);
@@ -789,6 +789,36 @@ static void test_demo_packets_every_framing(void **state)
     rmdir(dir);
 }
 
+static void test_schema_cache_full(void **state)
+{
+    fx *f = *state;
+    pk p = {3, 16.5, 0, 1};
+    /* distinct writer schema texts (namespace varies) until the cache is
+     * full: the next new one is refused with its own reason, cached ones
+     * still decode */
+    static char text[4096];
+    int full_at = -1;
+    for (int i = 0; i < (int)DECODER_MAX_SCHEMAS + 2; i++) {
+        snprintf(text, sizeof text, "%s", SCHEMA_A);
+        char *ns = strstr(text, "\"demo\"");
+        assert_non_null(ns);
+        char tail[4096];
+        snprintf(tail, sizeof tail, "%s", ns + 6);
+        snprintf(ns, sizeof text - (size_t)(ns - text), "\"demo%d\"%s", i, tail);
+        size_t n = container(text, &p, 1, "null", f->buf, sizeof f->buf);
+        int rc = decoder_extract(f->d, f->buf, n, &f->pf);
+        if (rc == PACKET_E_SCHEMA_CACHE_FULL) {
+            full_at = i;
+            break;
+        }
+        assert_reason(rc, 0);
+    }
+    assert_int_equal(decoder_schema_count(f->d), DECODER_MAX_SCHEMAS);
+    assert_true(full_at > 0);
+    size_t n = bare(SCHEMA_A, &p, f->buf, sizeof f->buf);
+    assert_reason(decoder_extract(f->d, f->buf, n, &f->pf), 0);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -809,6 +839,7 @@ int main(void)
         cmocka_unit_test_setup_teardown(test_random_bytes_and_mutations, setup,
                                         teardown),
         cmocka_unit_test(test_demo_packets_every_framing),
+        cmocka_unit_test_setup_teardown(test_schema_cache_full, setup, teardown),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
