@@ -55,29 +55,36 @@ $(FLAGS_STAMP): FORCE
 
 FORCE:
 
+# V=1 shows every command.
+Q := $(if $(V),,@)
+
 $(BUILD)/%.o: %.c $(FLAGS_STAMP)
 	@mkdir -p $(@D)
-	$(CC) $(CPPFLAGS) $(CFLAGS) -c $< -o $@
+	@$(if $(V),,echo "  CC    $<")
+	$(Q)$(CC) $(CPPFLAGS) $(CFLAGS) -c $< -o $@
 
 # core/ is built without any third-party include path on purpose.
 $(BUILD)/libodcore.a: $(CORE_OBJ)
 	@rm -f $@
-	ar rcs $@ $^
+	$(Q)ar rcs $@ $^
 
 $(BUILD)/libodcore.so: $(CORE_OBJ)
-	$(CC) -shared $(LDFLAGS) -o $@ $^ -lm
+	$(Q)$(CC) -shared $(LDFLAGS) -o $@ $^ -lm
 
 $(BUILD)/oddsky: $(DAEMON_OBJ) $(BUILD)/libodcore.a
-	$(CC) $(LDFLAGS) -o $@ $(DAEMON_OBJ) $(BUILD)/libodcore.a $(DAEMON_LIBS)
+	@$(if $(V),,echo "  LINK  $@")
+	$(Q)$(CC) $(LDFLAGS) -o $@ $(DAEMON_OBJ) $(BUILD)/libodcore.a $(DAEMON_LIBS)
 
 $(BUILD)/tests/unit/%: tests/unit/%.c $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a $(FLAGS_STAMP)
 	@mkdir -p $(@D)
-	$(CC) $(CPPFLAGS) $(CFLAGS) -I. -o $@ $< $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a \
+	@$(if $(V),,echo "  TEST  $@")
+	$(Q)$(CC) $(CPPFLAGS) $(CFLAGS) -I. -o $@ $< $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a \
 	    $(TEST_LIBS) $(DAEMON_LIBS) $(LDFLAGS)
 
 $(BUILD)/tests/bench/%: tests/bench/%.c $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a $(FLAGS_STAMP)
 	@mkdir -p $(@D)
-	$(CC) $(CPPFLAGS) $(CFLAGS) -I. -o $@ $< $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a \
+	@$(if $(V),,echo "  BENCH $@")
+	$(Q)$(CC) $(CPPFLAGS) $(CFLAGS) -I. -o $@ $< $(DAEMON_LIB_OBJ) $(BUILD)/libodcore.a \
 	    $(DAEMON_LIBS) $(LDFLAGS)
 
 units: $(UNIT_BIN)

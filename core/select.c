@@ -340,6 +340,37 @@ static int cmp_double(const void *a, const void *b)
     return (x > y) - (x < y);
 }
 
+/* In-place heapsort: glibc's qsort may malloc a merge buffer, and the
+ * model calls this while observing, where nothing may allocate. */
+static void sift_down(double *a, size_t root, size_t n)
+{
+    for (;;) {
+        size_t child = 2 * root + 1;
+        if (child >= n)
+            return;
+        if (child + 1 < n && cmp_double(&a[child], &a[child + 1]) < 0)
+            child++;
+        if (cmp_double(&a[root], &a[child]) >= 0)
+            return;
+        double t = a[root];
+        a[root] = a[child];
+        a[child] = t;
+        root = child;
+    }
+}
+
+static void sort_doubles(double *a, size_t n)
+{
+    for (size_t i = n / 2; i-- > 0;)
+        sift_down(a, i, n);
+    for (size_t end = n; end-- > 1;) {
+        double t = a[0];
+        a[0] = a[end];
+        a[end] = t;
+        sift_down(a, 0, end);
+    }
+}
+
 /* numpy's default percentile: linear interpolation at q (n - 1). */
 static double percentile_sorted(const double *s, size_t n, double q)
 {
@@ -355,7 +386,7 @@ double select_fd_width(const double *x, size_t n, double *scratch)
     if (n < 4)
         return NAN;
     memcpy(scratch, x, n * sizeof(double));
-    qsort(scratch, n, sizeof(double), cmp_double);
+    sort_doubles(scratch, n);
     double q25 = percentile_sorted(scratch, n, 25);
     double q75 = percentile_sorted(scratch, n, 75);
     return 2.0 * (q75 - q25) / cbrt((double)n);
