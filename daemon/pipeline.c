@@ -273,6 +273,24 @@ static int score_and_encode(pipeline *p, double t, int from_packet, int learn,
     return 0;
 }
 
+/* p->pf holds a decoded packet: pick its time, score, encode. */
+static int score_features(pipeline *p, int64_t kafka_ts_ms, int learn,
+                          const char *topic, int32_t partition, int64_t offset,
+                          const char *label, pipeline_output *out)
+{
+    p->c.type_errors += p->pf.type_errors;
+    p->c.truncated += p->pf.history_truncated ? 1 : 0;
+    double t = p->pf.time_days;
+    int from_packet = p->pf.time_from_packet && isfinite(t);
+    if (!from_packet) {
+        p->c.kafka_time++;
+        t = kafka_ts_ms >= 0 ? (double)kafka_ts_ms / 86400000.0 + MJD_UNIX_EPOCH
+                             : NAN;
+    }
+    return score_and_encode(p, t, from_packet, learn, topic, partition, offset,
+                            label, out);
+}
+
 int pipeline_process(pipeline *p, const pipeline_input *in, pipeline_output *out)
 {
     memset(out, 0, sizeof *out);
@@ -289,17 +307,22 @@ int pipeline_process(pipeline *p, const pipeline_input *in, pipeline_output *out
         out->pf = &p->pf;
         return rc;
     }
-    p->c.type_errors += p->pf.type_errors;
-    p->c.truncated += p->pf.history_truncated ? 1 : 0;
-    double t = p->pf.time_days;
-    int from_packet = p->pf.time_from_packet && isfinite(t);
-    if (!from_packet) {
-        p->c.kafka_time++;
-        t = in->kafka_ts_ms >= 0 ? (double)in->kafka_ts_ms / 86400000.0 + MJD_UNIX_EPOCH
-                                 : NAN;
-    }
-    return score_and_encode(p, t, from_packet, in->learn, in->topic,
-                            in->partition, in->offset, in->label, out);
+    return score_features(p, in->kafka_ts_ms, in->learn, in->topic,
+                          in->partition, in->offset, in->label, out);
+}
+
+int pipeline_process_features(pipeline *p, const packet_features *pf,
+                              int64_t kafka_ts_ms, int learn,
+                              const char *topic, int32_t partition,
+                              int64_t offset, const char *label,
+                              pipeline_output *out)
+{
+    memset(out, 0, sizeof *out);
+    p->c.packets++;
+    if (pf != &p->pf)
+        p->pf = *pf;
+    return score_features(p, kafka_ts_ms, learn, topic, partition, offset,
+                          label, out);
 }
 
 int pipeline_process_vector(pipeline *p, const char *id, double time_days,

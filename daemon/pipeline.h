@@ -96,6 +96,16 @@ const featmap *pipeline_featmap(const pipeline *p);
 int pipeline_process(pipeline *p, const pipeline_input *in,
                      pipeline_output *out);
 
+/* Score and encode features already extracted by the caller into *pf
+ * (replay reads Avro container files record by record with
+ * featmap_extract_avro, which is the same feature path).  pf->time_days /
+ * time_from_packet as decoder_extract leaves them. */
+int pipeline_process_features(pipeline *p, const packet_features *pf,
+                              int64_t kafka_ts_ms, int learn,
+                              const char *topic, int32_t partition,
+                              int64_t offset, const char *label,
+                              pipeline_output *out);
+
 /* The same for a vector that was never a packet (replay's vector lines):
  * x/err/missing have featmap_dim (or, without a feature map, the model's
  * dim) entries; err and missing may be NULL. */
