@@ -4,14 +4,16 @@
  *
  * Design choices, in the order a vector meets them:
  * - Projection: the sparse matrix is stored as one index list per projected
- *   axis (CSR), with the entries already divided by that axis' fitted bin
- *   width, so one pass of about d*P/3 float multiply-adds yields u_p, the
- *   vector's coordinate in level-1 bin widths.
+ *   axis, padded to the longest list with zero entries so every list has
+ *   the same trip count, with the entries already divided by that axis'
+ *   fitted bin width: one pass of about d*P/3 multiply-adds yields u_p,
+ *   the vector's coordinate in level-1 bin widths.
  * - Bins: in xStream the k-th split of axis f has bin width delta_f/2^(k-1)
  *   and shift s_f/2^(k-1), so its bin is floor(u_f * 2^(k-1) + s_f/delta_f).
- *   Each (chain, level) therefore keeps a precomputed power of two and
- *   shift fraction, and one multiply-add and a floor per level update the
- *   one axis that level splits (the running bin vector of the paper).
+ *   u_f is converted once to 32.32 fixed point; each (chain, level) keeps
+ *   its 2^(k-1) and shift fraction, so a level costs an integer multiply,
+ *   an add and a shift, and updates the one axis it splits (the running
+ *   bin vector of the paper).
  * - Hash: a chain's bin vector b is hashed with vector multiply-shift
  *   (Thorup 2015, "High speed hashing for integers and strings", strongly
  *   universal for 32-bit b_f with 64-bit random keys): key = a_0 +
@@ -19,17 +21,20 @@
  *   reduction for widths that are not powers of two).  Axes not split yet
  *   have b_f = 0, and a level changes one b_f, so the key is updated with
  *   one multiply per count-min row.
- * - Memory: every counter index of a vector is computed and prefetched
- *   first, for all chains, then read (score) and written (insert), so the
- *   cache misses of the M*L*rows counters overlap.
+ * - Memory: the counter offsets of chain c + 1 are computed and prefetched
+ *   in the same pass that reads (score) and writes (insert) chain c's, so
+ *   the cache misses of one chain overlap the work of the previous one.
  * - Score: min over levels of log2(c_l + 1) + l is log2 of min over levels
- *   of (c_l + 1) 2^l, and the mean of logs is the log of the product; the
- *   product is kept in [1, 2) by moving its binary exponent into an
- *   integer, so one libm log2 per vector gives the exact score.
+ *   of (c_l + 1) 2^l, and the mean of logs is the log of the product;
+ *   each chain minimum is split into its binary exponent (an integer sum)
+ *   and mantissa (a product that cannot overflow), so one libm log2 per
+ *   vector gives the exact score.
  *
  * Invariants: counters hold counts in units of the clock's g (decay.h);
- * every array is allocated in one
- * block by sketch_new and never resized.
+ * every array lives in one block allocated by sketch_new, never resized;
+ * the per-level table and the padded projection are derived from the
+ * saved state (axis, shift, widths, sparse lists) by chains_derive and
+ * proj_derive.
  */
 #include "sketch.h"
 
@@ -48,6 +53,7 @@
 /* One (chain, level), chain-major (entry c * L + l). */
 typedef struct sketch_level {
     uint64_t shift; /* the axis' shift fraction, 32.32 fixed point */
+    uint64_t scale; /* 2^up */
     uint64_t hkey;  /* the chain's row-0 hash key of this axis */
     uint32_t base;  /* offset of this (chain, level)'s row 0 in counters */
     uint8_t axis;   /* projected axis split at this level */
@@ -68,7 +74,11 @@ struct sketch {
     uint32_t *proj_start; /* P + 1 */
     uint16_t *proj_idx;   /* feature index per entry */
     int8_t *proj_sign;    /* +1 / -1 per entry */
-    double *proj_val;     /* sign * sqrt(3) / width[p] per entry */
+    uint32_t pad_k;       /* longest axis list; every list padded to it */
+    uint16_t *pad_idx;    /* P * pad_k feature indices (padding: 0) */
+    double *pad_val;      /* P * pad_k: sign sqrt(3) / width[p] (padding:
+                             0), so the projection loops have one fixed
+                             trip count and no mispredicted exits */
     double *width;        /* P: fitted level-1 bin width, z units */
 
     /* chains */
@@ -160,6 +170,7 @@ static void chains_derive(sketch *sk)
             lv->axis = (uint8_t)f;
             lv->prev = (uint16_t)last[f];
             lv->up = (uint8_t)++ups[f];
+            lv->scale = (uint64_t)1 << lv->up;
             lv->shift = (uint64_t)(sk->shift[c * P + f] * SKETCH_FIX_ONE);
             lv->base = (c * L + l) * R * W;
             lv->hkey = sk->hkey[(size_t)c * R * P + f];
@@ -175,9 +186,22 @@ static void chains_derive(sketch *sk)
 static void proj_derive(sketch *sk)
 {
     const uint32_t P = sk->p.proj_dims;
-    for (uint32_t p = 0; p < P; p++)
-        for (uint32_t k = sk->proj_start[p]; k < sk->proj_start[p + 1]; k++)
-            sk->proj_val[k] = (double)sk->proj_sign[k] * SKETCH_SQRT3 / sk->width[p];
+    uint32_t K = 0;
+    for (uint32_t p = 0; p < P; p++) {
+        uint32_t n = sk->proj_start[p + 1] - sk->proj_start[p];
+        K = n > K ? n : K;
+    }
+    sk->pad_k = K;
+    for (uint32_t p = 0; p < P; p++) {
+        uint32_t from = sk->proj_start[p], n = sk->proj_start[p + 1] - from;
+        for (uint32_t k = 0; k < K; k++) {
+            sk->pad_idx[p * K + k] = k < n ? sk->proj_idx[from + k] : 0;
+            sk->pad_val[p * K + k] =
+                k < n ? (double)sk->proj_sign[from + k] * SKETCH_SQRT3 /
+                            sk->width[p]
+                      : 0.0;
+        }
+    }
 }
 
 sketch *sketch_new(const sketch_params *p, int *err)
@@ -203,6 +227,7 @@ sketch *sketch_new(const sketch_params *p, int *err)
     size_t o_width = carve(&off, P * sizeof(double), 8);
     size_t o_levw = carve(&off, L * sizeof(double), 8);
     size_t o_pval = carve(&off, P * d * sizeof(double), 8);
+    size_t o_padidx = carve(&off, P * d * sizeof(uint16_t), 2);
     size_t o_shift = carve(&off, M * P * sizeof(double), 8);
     size_t o_best = carve(&off, M * sizeof(double), 8);
     size_t o_zd = carve(&off, d * sizeof(double), 8);
@@ -224,7 +249,8 @@ sketch *sketch_new(const sketch_params *p, int *err)
     sk->hbase = (uint64_t *)(base + o_hbase);
     sk->width = (double *)(base + o_width);
     sk->level_w = (double *)(base + o_levw);
-    sk->proj_val = (double *)(base + o_pval);
+    sk->pad_val = (double *)(base + o_pval);
+    sk->pad_idx = (uint16_t *)(base + o_padidx);
     sk->shift = (double *)(base + o_shift);
     sk->best = (double *)(base + o_best);
     sk->zd = (double *)(base + o_zd);
@@ -318,10 +344,13 @@ static void project(const sketch *sk, double *y)
 {
     const uint32_t P = sk->p.proj_dims;
     const double *zd = sk->zd;
-    for (uint32_t p = 0; p < P; p++) {
+    const uint32_t K = sk->pad_k;
+    const uint16_t *ix = sk->pad_idx;
+    const double *val = sk->pad_val;
+    for (uint32_t p = 0; p < P; p++, ix += K, val += K) {
         double acc = 0.0;
-        for (uint32_t k = sk->proj_start[p]; k < sk->proj_start[p + 1]; k++)
-            acc += sk->proj_val[k] * zd[sk->proj_idx[k]];
+        for (uint32_t k = 0; k < K; k++)
+            acc += val[k] * zd[ix[k]];
         acc = acc > sk->u_clamp ? sk->u_clamp : acc;
         acc = acc < -sk->u_clamp ? -sk->u_clamp : acc;
         y[p] = acc;
@@ -333,7 +362,7 @@ static void project(const sketch *sk, double *y)
  * the true value inside +-2^63, so nothing wraps). */
 static inline uint32_t fixed_bin(uint64_t u, const sketch_level *lv)
 {
-    return (uint32_t)(((u << lv->up) + lv->shift) >> 32);
+    return (uint32_t)((u * lv->scale + lv->shift) >> 32);
 }
 
 static inline uint32_t reduce(uint64_t key, uint32_t w)
@@ -407,16 +436,95 @@ static inline double chain_visit(sketch *sk, uint32_t c, int insert)
     return best;
 }
 
+/* The one-row case, which the defaults use, with everything in
+ * registers: chain c + 1's counter offsets are computed and prefetched
+ * while chain c's counters are read (and written when insert).  pow2
+ * selects the shift form of the range reduction (width a power of two). */
+static inline __attribute__((always_inline)) void
+run_chains_r1(sketch *sk, const int insert, const int pow2)
+{
+    const uint32_t M = sk->p.chains, L = sk->p.depth, W = sk->p.width;
+    const unsigned wsh = 64u - (unsigned)__builtin_ctz(W);
+    const uint64_t *u = sk->u;
+    double *cnt = sk->counters;
+    const double g = sk->clk.g;
+    const double *lw = sk->level_w;
+    uint32_t ixa[SKETCH_MAX_DEPTH], ixb[SKETCH_MAX_DEPTH];
+    uint32_t *cur = ixa, *nxt = ixb;
+    uint32_t bins[SKETCH_MAX_DEPTH + 1];
+    bins[L] = 0; /* the bin of an axis not split yet */
+    /* One pass over the levels locates level l of chain c + 1 (from the
+     * "locate" half) and reads level l of chain c (the "visit" half). */
+#define SKETCH_LOCATE(lv, l, key)                                           \
+    do {                                                                    \
+        uint32_t b_ = fixed_bin(u[(lv)[l].axis], &(lv)[l]);                 \
+        key += (lv)[l].hkey * ((uint64_t)b_ - (uint64_t)bins[(lv)[l].prev]);\
+        bins[l] = b_;                                                       \
+        uint32_t o_ = (lv)[l].base +                                        \
+                      (pow2 ? (uint32_t)(key >> wsh) : reduce(key, W));     \
+        __builtin_prefetch(cnt + o_, 1, 3);                                 \
+        nxt[l] = o_;                                                        \
+    } while (0)
+#define SKETCH_VISIT(l, best)                                               \
+    do {                                                                    \
+        double v_ = cnt[cur[l]];                                            \
+        if (insert)                                                         \
+            cnt[cur[l]] = v_ + g;                                           \
+        v_ = (v_ + g) * lw[l];                                              \
+        best = best < v_ ? best : v_;                                       \
+    } while (0)
+    {
+        const sketch_level *lv = sk->lev;
+        uint64_t key = sk->hbase[0];
+        for (uint32_t l = 0; l < L; l++)
+            SKETCH_LOCATE(lv, l, key);
+        uint32_t *t = cur;
+        cur = nxt;
+        nxt = t;
+    }
+    for (uint32_t c = 0; c + 1 < M; c++) {
+        const sketch_level *lv = sk->lev + (size_t)(c + 1) * L;
+        uint64_t key = sk->hbase[c + 1];
+        double best = INFINITY;
+        for (uint32_t l = 0; l < L; l++) {
+            SKETCH_LOCATE(lv, l, key);
+            SKETCH_VISIT(l, best);
+        }
+        sk->best[c] = best;
+        uint32_t *t = cur;
+        cur = nxt;
+        nxt = t;
+    }
+    double best = INFINITY;
+    for (uint32_t l = 0; l < L; l++)
+        SKETCH_VISIT(l, best);
+    sk->best[M - 1] = best;
+#undef SKETCH_LOCATE
+#undef SKETCH_VISIT
+}
+
 /* Every chain, software-pipelined: chain c + 1's counters are located and
  * prefetched before chain c's are read. */
-static inline void run_chains(sketch *sk, int insert)
+static void run_chains(sketch *sk, int insert)
 {
     const uint32_t M = sk->p.chains;
-    chain_indices(sk, 0);
-    for (uint32_t c = 0; c < M; c++) {
-        if (c + 1 < M)
-            chain_indices(sk, c + 1);
-        sk->best[c] = chain_visit(sk, c, insert);
+    if (sk->p.rows == 1) {
+        int pow2 = (sk->p.width & (sk->p.width - 1)) == 0;
+        if (insert && pow2)
+            run_chains_r1(sk, 1, 1);
+        else if (insert)
+            run_chains_r1(sk, 1, 0);
+        else if (pow2)
+            run_chains_r1(sk, 0, 1);
+        else
+            run_chains_r1(sk, 0, 0);
+    } else {
+        chain_indices(sk, 0);
+        for (uint32_t c = 0; c < M; c++) {
+            if (c + 1 < M)
+                chain_indices(sk, c + 1);
+            sk->best[c] = chain_visit(sk, c, insert);
+        }
     }
     if (insert)
         sk->total += sk->clk.g;

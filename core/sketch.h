@@ -28,12 +28,19 @@
  * - Deterministic: the same parameters (seed included), warm-up and
  *   inputs give bit-identical scores and snapshots; a loaded sketch
  *   continues exactly as the saved one would have.
- * - Projection and bin arithmetic run in float (IEEE single, no
- *   contraction under -std=c11); counters and scores in double.  The one
- *   log2 per scored vector is libm's log2 on the product of the chain
- *   minima (exact products kept in range by exponent extraction), so the
- *   score is exact to a few ulps, not an approximation.
- * - Projected values beyond +-2^30 bin widths clamp to the outermost bin.
+ * - Arithmetic: the projection runs in double; bins are computed in
+ *   32.32 fixed point from the projected coordinate (integer multiply by
+ *   2^k, add the shift, take the top word), so a bin is an exact floor of
+ *   a value quantised to 2^-32 level-1 widths, the same on every machine.
+ *   (Float would not be faster here: the loops are scalar; the fixed
+ *   point removes the float->int conversion and its floor correction.)
+ *   Counters and scores are double.  The one log2 per scored vector is
+ *   libm's log2 on the product of the chain minima (exact products kept
+ *   in range by exponent extraction), so the score is exact to a few
+ *   ulps, not an approximation.
+ * - A projected coordinate is clamped to +-2^(30 - k) level-1 bin widths,
+ *   k the most splits any chain makes on one axis, so no fixed-point sum
+ *   overflows (for the defaults, a vector 2^26 half-ranges out).
  * - Not thread-safe: scoring uses scratch space inside the sketch.
  */
 #ifndef ODDSKY_CORE_SKETCH_H
