@@ -337,14 +337,27 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
     bus *b = opaque;
     int coop = strcmp(rd_kafka_rebalance_protocol(rk), "COOPERATIVE") == 0;
     if (err == RD_KAFKA_RESP_ERR__ASSIGN_PARTITIONS) {
+        /* The owner may start a partition earlier than its committed
+         * offset (the learn-once ledger re-reads what a crash lost from
+         * the model), so look the committed offsets up first. */
+        if (b->cb.on_assign) {
+            for (int i = 0; i < parts->cnt; i++)
+                parts->elems[i].offset = RD_KAFKA_OFFSET_INVALID;
+            rd_kafka_resp_err_t ce = rd_kafka_committed(rk, parts, 10000);
+            if (ce && b->cb.on_log)
+                b->cb.on_log(b->cb.ctx, 4, "ASSIGN", rd_kafka_err2str(ce));
+        }
         for (int i = 0; i < parts->cnt; i++) {
-            if (slot_add(b, parts->elems[i].topic, parts->elems[i].partition) < 0 &&
-                b->cb.on_log)
+            rd_kafka_topic_partition_t *tp = &parts->elems[i];
+            if (slot_add(b, tp->topic, tp->partition) < 0 && b->cb.on_log)
                 b->cb.on_log(b->cb.ctx, 3, "ASSIGN",
                              "more partitions assigned than kafka.max_partitions");
-            if (b->cb.on_assign)
-                b->cb.on_assign(b->cb.ctx, parts->elems[i].topic,
-                                parts->elems[i].partition);
+            if (b->cb.on_assign) {
+                int64_t committed = tp->err ? RD_KAFKA_OFFSET_INVALID : tp->offset;
+                int64_t start = b->cb.on_assign(b->cb.ctx, tp->topic, tp->partition,
+                                                committed);
+                tp->offset = start;
+            }
         }
         if (coop)
             rd_kafka_incremental_assign(rk, parts);

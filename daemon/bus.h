@@ -47,8 +47,14 @@ typedef struct bus_callbacks {
                        bus_ticket *t);
     /* After each batch handed to on_message. May be NULL. */
     void (*on_batch_end)(void *ctx, bus *b, size_t n);
-    /* A partition was assigned / is being revoked. May be NULL. */
-    void (*on_assign)(void *ctx, const char *topic, int32_t partition);
+    /* A partition is being assigned; committed is the group's committed
+     * offset (RD_KAFKA_OFFSET_INVALID when none).  Returns the offset to
+     * start from, or RD_KAFKA_OFFSET_INVALID to start at the committed
+     * offset (or auto.offset.reset).  May be NULL. */
+    int64_t (*on_assign)(void *ctx, const char *topic, int32_t partition,
+                         int64_t committed);
+    /* A partition is being revoked (after its in-flight results were
+     * flushed). May be NULL. */
     void (*on_revoke)(void *ctx, const char *topic, int32_t partition);
     /* Every output of a ticket was delivered; latency from consume.  May
      * be NULL. */
