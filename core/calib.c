@@ -37,7 +37,8 @@ struct calib {
     uint32_t n;        /* bins + 2 */
     uint32_t lo_cell;  /* lowest non-empty natural cell, n when none */
     double *cell;      /* n */
-    double *fen;       /* n + 1, 1-based */
+    uint32_t fn;       /* Fenwick size: the power of two >= n */
+    double *fen;       /* fn + 1, 1-based; positions past n stay 0 */
 };
 
 void calib_params_default(calib_params *p)
@@ -91,7 +92,10 @@ calib *calib_new(const calib_params *p, int *err)
         goto fail_struct;
     c->p = *p;
     c->n = p->bins + 2;
-    c->cell = calloc((size_t)c->n * 2 + 1, sizeof(double));
+    c->fn = 1;
+    while (c->fn < c->n)
+        c->fn *= 2;
+    c->cell = calloc((size_t)c->n + c->fn + 1, sizeof(double));
     if (!c->cell)
         goto fail_cells;
     c->fen = c->cell + c->n;
@@ -135,7 +139,7 @@ const calib_params *calib_get_params(const calib *c) { return &c->p; }
 
 size_t calib_bytes(const calib *c)
 {
-    return sizeof *c + ((size_t)c->n * 2 + 1) * sizeof(double);
+    return sizeof *c + ((size_t)c->n + c->fn + 1) * sizeof(double);
 }
 
 /* Descending Fenwick position (1-based) of natural cell i. */
@@ -146,7 +150,7 @@ static inline uint32_t fen_pos(const calib *c, uint32_t i)
 
 static void fen_add(calib *c, uint32_t pos, double v)
 {
-    for (; pos <= c->n; pos += pos & (0u - pos))
+    for (; pos <= c->fn; pos += pos & (0u - pos))
         c->fen[pos] += v;
 }
 
@@ -159,29 +163,38 @@ static double fen_prefix(const calib *c, uint32_t pos)
     return s;
 }
 
-/* Smallest pos with prefix(pos) >= target (n + 1 when none), and
- * prefix(pos - 1) in *below. */
+/* Smallest pos with prefix(pos) >= target (past n when none), and
+ * prefix(pos - 1) in *below.  The tree size is a power of two, so the
+ * descent needs no bounds check, and the step is written without a
+ * data-dependent branch. */
 static uint32_t fen_search(const calib *c, double target, double *below)
 {
-    uint32_t pos = 0, step = 1;
-    while (step * 2 <= c->n)
-        step *= 2;
+    uint32_t pos = 0;
     double acc = 0;
-    for (; step; step >>= 1) {
+    for (uint32_t step = c->fn; step; step >>= 1) {
         uint32_t nxt = pos + step;
-        if (nxt <= c->n && acc + c->fen[nxt] < target) {
-            pos = nxt;
-            acc += c->fen[nxt];
-        }
+        double sum = acc + c->fen[nxt];
+        int take = sum < target;
+        pos = take ? nxt : pos;
+        acc = take ? sum : acc;
     }
     *below = acc;
     return pos + 1;
 }
 
-/* Natural cell of a score. */
-static uint32_t cell_of(const calib *c, double s)
+/* sinh through one exp where nothing cancels (|a| >= 1/4: relative error
+ * a few ulps); glibc's sinh goes through the slower expm1. */
+static double fast_sinh(double a)
 {
-    double a = asinh(s);
+    if (fabs(a) < 0.25)
+        return sinh(a);
+    double e = exp(a);
+    return 0.5 * (e - 1.0 / e);
+}
+
+/* Natural cell of a score. */
+static uint32_t cell_of(const calib *c, double a)
+{
     if (a < -c->amax)
         return 0;
     if (a > c->amax)
@@ -207,11 +220,26 @@ void calib_advance(calib *c, double t_days)
     if (f != 1.0) {
         for (uint32_t i = 0; i < c->n; i++)
             c->cell[i] *= f;
-        for (uint32_t i = 1; i <= c->n; i++)
+        for (uint32_t i = 1; i <= c->fn; i++)
             c->fen[i] *= f;
         c->total *= f;
         find_lo_cell(c); /* a gap of ~1000 half-lives can empty cells */
     }
+}
+
+/* Add one score, already placed in natural cell i, at the clock's time. */
+static void insert_cell(calib *c, uint32_t i)
+{
+    if (!c->seen) {
+        c->seen = 1;
+        c->first_time = c->clk.t_now;
+    }
+    double g = decay_unit(&c->clk);
+    c->cell[i] += g;
+    if (i < c->lo_cell)
+        c->lo_cell = i;
+    fen_add(c, fen_pos(c, i), g);
+    c->total += g;
 }
 
 int calib_observe(calib *c, double s, double t_days)
@@ -219,17 +247,7 @@ int calib_observe(calib *c, double s, double t_days)
     calib_advance(c, t_days);
     if (isnan(s))
         return CORE_EINVAL;
-    if (!c->seen) {
-        c->seen = 1;
-        c->first_time = c->clk.t_now;
-    }
-    double g = decay_unit(&c->clk);
-    uint32_t i = cell_of(c, s);
-    c->cell[i] += g;
-    if (i < c->lo_cell)
-        c->lo_cell = i;
-    fen_add(c, fen_pos(c, i), g);
-    c->total += g;
+    insert_cell(c, cell_of(c, asinh(s)));
     return 0;
 }
 
@@ -242,12 +260,12 @@ size_t calib_observe_many(calib *c, const double *s, const double *t,
     return taken;
 }
 
-double calib_tail_prob(const calib *c, double s)
+/* tail_prob for a = asinh(s), s not NaN. */
+static double tail_of(const calib *c, double a)
 {
     const double W = c->total;
-    if (!(W > 0) || isnan(s))
+    if (!(W > 0))
         return 1.0;
-    double a = asinh(s);
     if (a < -c->amax)
         return 1.0;
     if (a > c->amax)
@@ -260,6 +278,13 @@ double calib_tail_prob(const calib *c, double s)
     double above = fen_prefix(c, c->p.bins - k);
     double t = (above + c->cell[k + 1] * frac) / W;
     return t > 1.0 ? 1.0 : t;
+}
+
+double calib_tail_prob(const calib *c, double s)
+{
+    if (isnan(s))
+        return 1.0;
+    return tail_of(c, asinh(s));
 }
 
 double calib_mass(const calib *c) { return decay_read(&c->clk, c->total); }
@@ -287,10 +312,13 @@ double calib_rate_per_hour(const calib *c)
         return c->p.prior_rate_per_hour;
     const double H = c->p.half_life_days;
     double window; /* days of stream the decayed mass stands for */
+    double x = T / H;
     if (H == 0)
         window = T;
-    else
-        window = -expm1(-(T / H) * CALIB_LN2) * H / CALIB_LN2;
+    else if (x < 0.125) /* 1 - 2^-x without cancellation */
+        window = -expm1(-x * CALIB_LN2) * H / CALIB_LN2;
+    else /* exp2 is several times cheaper than expm1 */
+        window = (1.0 - exp2(-x)) * H / CALIB_LN2;
     return W / window / 24.0;
 }
 
@@ -328,7 +356,7 @@ double calib_threshold(const calib *c)
     frac = frac < 0 ? 0 : frac > 1 ? 1 : frac;
     /* tail(a) = above + m (a_top - a) / w = target */
     double a_top = -c->amax + (double)i * c->w;
-    return sinh(a_top - frac * c->w);
+    return fast_sinh(a_top - frac * c->w);
 }
 
 int calib_should_flag(const calib *c, double s)
@@ -338,6 +366,28 @@ int calib_should_flag(const calib *c, double s)
     if (c->p.policy == CALIB_POLICY_ALPHA)
         return calib_tail_prob(c, s) <= c->p.alpha;
     return s >= calib_threshold(c);
+}
+
+int calib_assess(calib *c, double s, double t_days, int learn,
+                 calib_verdict *out)
+{
+    if (!c || !out)
+        return CORE_EINVAL;
+    calib_advance(c, t_days);
+    out->threshold = calib_threshold(c);
+    if (isnan(s)) {
+        out->tail_prob = 1.0;
+        out->flag = 0;
+        return CORE_EINVAL;
+    }
+    double a = asinh(s);
+    out->tail_prob = tail_of(c, a);
+    out->flag = c->p.policy == CALIB_POLICY_ALPHA
+                    ? out->tail_prob <= c->p.alpha
+                    : s >= out->threshold;
+    if (learn)
+        insert_cell(c, cell_of(c, a));
+    return 0;
 }
 
 double calib_expected_per_night(const calib *c)
@@ -400,7 +450,7 @@ void calib_save(const calib *c, snap_writer *w)
     snap_put_f64(w, c->first_time);
     snap_put_f64(w, c->total);
     snap_put_f64s(w, c->cell, c->n);
-    snap_put_f64s(w, c->fen + 1, c->n);
+    snap_put_f64s(w, c->fen + 1, c->fn);
 }
 
 int calib_load(calib *c, snap_reader *r)
@@ -419,15 +469,17 @@ int calib_load(calib *c, snap_reader *r)
     c->first_time = snap_get_f64(r);
     c->total = snap_get_f64(r);
     snap_get_f64s(r, c->cell, c->n);
-    snap_get_f64s(r, c->fen + 1, c->n);
+    snap_get_f64s(r, c->fen + 1, c->fn);
     if (r->err)
         return r->err;
     if (!(c->total >= 0) || !isfinite(c->total))
         return CORE_EFORMAT;
     find_lo_cell(c);
     for (uint32_t i = 0; i < c->n; i++)
-        if (!(c->cell[i] >= 0) || !isfinite(c->cell[i]) ||
-            !(c->fen[i + 1] >= 0) || !isfinite(c->fen[i + 1]))
+        if (!(c->cell[i] >= 0) || !isfinite(c->cell[i]))
+            return CORE_EFORMAT;
+    for (uint32_t i = 1; i <= c->fn; i++)
+        if (!(c->fen[i] >= 0) || !isfinite(c->fen[i]))
             return CORE_EFORMAT;
     return 0;
 }

@@ -112,6 +112,22 @@ double calib_expected_per_night(const calib *c);
  * min(1, budget / rate)). */
 double calib_target_fraction(const calib *c);
 
+/* What one packet's score gets: tail probability, threshold in force and
+ * flag decision, all against the distribution before the score. */
+typedef struct calib_verdict {
+    double tail_prob;
+    double threshold;
+    int flag;
+} calib_verdict;
+
+/* The per-packet path in one call: calib_advance(t_days), fill *out as
+ * calib_tail_prob(s), calib_threshold() and calib_should_flag(s) would,
+ * then add s when learn is nonzero (asinh(s) computed once).  A NaN score
+ * gives tail 1, no flag, is not added, and returns CORE_EINVAL; NULL
+ * pointers give CORE_EINVAL.  Returns 0. */
+int calib_assess(calib *c, double s, double t_days, int learn,
+                 calib_verdict *out);
+
 /* Decayed total mass W at the clock's time. */
 double calib_mass(const calib *c);
 

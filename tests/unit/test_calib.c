@@ -392,6 +392,43 @@ static void test_histogram_and_save_load(void **state)
     calib_free(d);
 }
 
+/* calib_assess == tail_prob + threshold + should_flag, then observe;
+ * for both policies, learning or not, bit for bit. */
+static void test_assess_matches_separate_calls(void **state)
+{
+    (void)state;
+    for (int policy = 0; policy < 2; policy++) {
+        calib *a = make(2048, 0.7, policy), *b = make(2048, 0.7, policy);
+        rng r;
+        rng_seed(&r, 12 + policy);
+        double t = 60000.0;
+        int flags = 0;
+        for (int i = 0; i < 20000; i++) {
+            double s = 10.0 * rng_normal(&r) + (i % 101 == 0 ? 300.0 : 0.0);
+            int learn = i % 5 != 0;
+            t += 1e-4;
+            calib_verdict v;
+            assert_int_equal(calib_assess(a, s, t, learn, &v), 0);
+            calib_advance(b, t);
+            assert_same(v.tail_prob, calib_tail_prob(b, s));
+            assert_same(v.threshold, calib_threshold(b));
+            assert_int_equal(v.flag, calib_should_flag(b, s));
+            if (learn)
+                calib_observe(b, s, t);
+            flags += v.flag;
+        }
+        assert_true(flags > 0);
+        calib_verdict v;
+        assert_int_equal(calib_assess(a, NAN, t, 1, &v), CORE_EINVAL);
+        assert_same(v.tail_prob, 1.0);
+        assert_int_equal(v.flag, 0);
+        assert_int_equal(calib_assess(a, 1.0, t, 1, NULL), CORE_EINVAL);
+        assert_same(calib_mass(a), calib_mass(b));
+        calib_free(a);
+        calib_free(b);
+    }
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -403,6 +440,7 @@ int main(void)
         cmocka_unit_test(test_decay_and_renormalisation),
         cmocka_unit_test(test_rate_estimate),
         cmocka_unit_test(test_histogram_and_save_load),
+        cmocka_unit_test(test_assess_matches_separate_calls),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
