@@ -469,7 +469,12 @@ static void flag_decision(model *m, double dn, double sn, model_result *out)
     out->novelty = novelty;
     out->tail_prob = calib_tail_prob(m->cal, novelty);
     out->threshold = calib_threshold(m->cal);
-    out->flag = isfinite(novelty) && calib_should_flag(m->cal, novelty);
+    /* calib_should_flag() without recomputing either figure: alpha
+     * policy, tail_prob <= alpha; budget policy, novelty >= threshold. */
+    const calib_params *cp = calib_get_params(m->cal);
+    out->flag = isfinite(novelty) &&
+                (cp->policy == CALIB_POLICY_ALPHA ? out->tail_prob <= cp->alpha
+                                                  : novelty >= out->threshold);
 }
 
 static void learn_scores(model *m, const model_result *out, double t)
