@@ -136,4 +136,7 @@ clean:
 	rm -rf $(BUILD)/core $(BUILD)/daemon $(BUILD)/tests $(BUILD)/oddsky \
 	       $(BUILD)/libodcore.* $(BUILD)/asan $(BUILD)/.flags
 
+# Files embedded with .incbin (not seen by -MMD).
+$(BUILD)/daemon/demo_assets.o: config/demo-featmap.json
+
 -include $(CORE_OBJ:.o=.d) $(DAEMON_OBJ:.o=.d)

@@ -69,6 +69,7 @@ struct bus {
 
     bus_ticket *tickets;
     bus_ticket *free_tickets;
+    uint64_t ntickets;
     uint64_t in_flight;
     int paused;
     int consuming;
@@ -389,18 +390,22 @@ static void serve_producer(bus *b)
 static void serve_consumer(bus *b)
 {
     for (;;) {
-        if (!b->consuming || b->fatal) {
-            /* Still serve rebalances and errors, but take no messages. */
-            rd_kafka_poll(b->consumer, 0);
+        /* rd_kafka_poll() must not serve a queue that carries messages
+         * (librdkafka asserts), and a message taken must be processed: a
+         * dropped one would later look like a gap and be skipped.  So
+         * while draining the consumer queue is left alone (the final
+         * close serves the revoke), and otherwise a call never takes more
+         * messages than there are free tickets.  While paused the call
+         * still runs, to serve rebalances; librdkafka discards what was
+         * fetched for paused partitions. */
+        if (!b->consuming || b->fatal)
             return;
-        }
+        uint64_t free_tickets = b->ntickets - b->in_flight;
         uint32_t room = b->o.poll_batch;
-        if (b->paused)
-            room = 0;
-        if (room == 0) {
-            rd_kafka_poll(b->consumer, 0);
+        if (free_tickets < room)
+            room = (uint32_t)free_tickets;
+        if (room == 0)
             return;
-        }
         ssize_t n = rd_kafka_consume_batch_queue(b->cq, 0, b->batch, room);
         if (n <= 0)
             return;
@@ -420,10 +425,9 @@ static void serve_consumer(bus *b)
             bus_ticket *t = b->free_tickets;
             int s = slot_for_message(b, m);
             if (!t || s < 0) {
-                /* No ticket (cannot happen below max_in_flight + batch) or
-                 * an unknown partition: do not process, so the offset is
-                 * never stored past it; it comes back after a rebalance or
-                 * restart. */
+                /* An unknown partition (more than max_partitions assigned;
+                 * no ticket cannot happen, see room above): nothing of it
+                 * is ever stored, so it comes back after a restart. */
                 b->counters.untracked++;
                 rd_kafka_message_destroy(m);
                 continue;
@@ -546,6 +550,7 @@ int bus_new(uv_loop_t *loop, const bus_opts *o, const bus_callbacks *cb,
     b->cpipe[0] = b->cpipe[1] = b->ppipe[0] = b->ppipe[1] = -1;
 
     uint32_t ntickets = b->o.max_in_flight + b->o.poll_batch;
+    b->ntickets = ntickets;
     b->tickets = calloc(ntickets, sizeof *b->tickets);
     b->slots = calloc(b->o.max_partitions, sizeof *b->slots);
     b->batch = calloc(b->o.poll_batch, sizeof *b->batch);
