@@ -3,9 +3,9 @@
 #
 # Stages: unit (cmocka binaries), reference (pytest against outside
 # libraries), integration (real Kafka broker), fuzz smoke, web (headless
-# Chromium).  Each stage script lives beside this file; a stage that is not
-# written yet is simply absent from the list below.  --quick (used by make
-# asan) runs the stages that make sense under sanitizers.
+# Chromium), valgrind over the unit tests, and the unit and integration
+# tests again under AddressSanitizer + UBSan.  --quick (used by make asan
+# on its own build) runs the unit tests only.
 set -uo pipefail
 top=$(cd "$(dirname "$0")/.." && pwd)
 cd "$top"
@@ -44,12 +44,13 @@ run_stage() { # name script
     record "$name" $?
 }
 
-run_stage "reference tests" tests/reference/run.sh
 if [ $quick -eq 0 ]; then
+    run_stage "reference tests" tests/reference/run.sh
     run_stage "integration tests" tests/integration/run.sh
     run_stage "fuzz smoke" tests/fuzz/smoke.sh
     run_stage "web tests" tests/web/run.sh
-    run_stage "sanitizer tests" tests/run-sanitizers.sh
+    run_stage "valgrind (unit tests)" tests/run-valgrind.sh
+    run_stage "sanitizers (unit and integration tests)" tests/run-sanitizers.sh
 fi
 
 echo

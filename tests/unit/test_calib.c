@@ -112,6 +112,10 @@ static double centre(const calib *c, uint32_t k)
 
 static void test_params_and_alloc_failure(void **state)
 {
+    /* valgrind replaces malloc, so the failing-allocator shim never
+     * fires under it; the plain unit run covers this test. */
+    if (getenv("ODDSKY_UNDER_VALGRIND"))
+        skip();
     (void)state;
     calib_params p;
     const char *field = NULL;

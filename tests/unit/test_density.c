@@ -13,6 +13,7 @@
 #include <stdio.h>
 #include <string.h>
 
+#include <stdlib.h>
 #include <cmocka.h>
 
 #include "core/density.h"
@@ -288,6 +289,10 @@ static void test_save_load_continues(void **state)
 
 static void test_bad_params_and_alloc_failure(void **state)
 {
+    /* valgrind replaces malloc, so the failing-allocator shim never
+     * fires under it; the plain unit run covers this test. */
+    if (getenv("ODDSKY_UNDER_VALGRIND"))
+        skip();
     (void)state;
     density_params p;
     int err = 0, failures = 0;

@@ -12,6 +12,7 @@
 #include <stdio.h>
 #include <string.h>
 
+#include <stdlib.h>
 #include <cmocka.h>
 
 #include "core/err.h"
@@ -175,6 +176,10 @@ static void test_widths_by_hand(void **state)
 
 static void test_ws_alloc_failure(void **state)
 {
+    /* valgrind replaces malloc, so the failing-allocator shim never
+     * fires under it; the plain unit run covers this test. */
+    if (getenv("ODDSKY_UNDER_VALGRIND"))
+        skip();
     (void)state;
     int err = 0, failures = 0;
     assert_null(select_ws_new(0, 2, 2, &err));
