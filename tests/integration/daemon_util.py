@@ -210,3 +210,44 @@ def write_schema_dir(path, schema_id):
     with open(os.path.join(path, f"{schema_id}.avsc"), "w") as f:
         f.write(text)
     return str(path)
+
+
+# ----------------------------------------------------------------- framings
+# An independent reading of the demo packets' framings with fastavro
+# (source: Apache Avro specification 1.11, "Object Container Files" and
+# "Binary Encoding"; the schema-id framing as in daemon/decode.h and
+# `oddsky simulate --help`: byte 0, a 4-byte big-endian id, the datum).
+
+def _parsed_schema():
+    import fastavro
+    with open(PACKET_SCHEMA) as f:
+        return fastavro.parse_schema(json.load(f))
+
+
+def avro_packet(value, framing):
+    """The packet dict inside one message of the given framing."""
+    import io
+
+    import fastavro
+    if framing == "json":
+        return json.loads(value)
+    if framing == "container":
+        recs = list(fastavro.reader(io.BytesIO(value)))
+        assert len(recs) == 1, f"container with {len(recs)} records"
+        return recs[0]
+    if framing == "schema_id":
+        assert value[0] == 0
+        return fastavro.schemaless_reader(io.BytesIO(value[5:]), _parsed_schema())
+    if framing == "bare":
+        return fastavro.schemaless_reader(io.BytesIO(value), _parsed_schema())
+    raise ValueError(framing)
+
+
+def bare_avro(packet):
+    """The bare Avro datum of a packet dict (fastavro)."""
+    import io
+
+    import fastavro
+    buf = io.BytesIO()
+    fastavro.schemaless_writer(buf, _parsed_schema(), packet)
+    return buf.getvalue()

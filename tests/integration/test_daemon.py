@@ -124,3 +124,232 @@ def test_every_packet_scored_once(broker, new_topic, oddsky, tmp_path, partition
                 diffs.append((r["packet_id"], k, live[k], r[k]))
     print(f"run vs replay: {len(diffs)} field differences")
     assert not diffs, f"{len(diffs)} differences, first {diffs[:10]}"
+
+
+# ----------------------------------------------------------------- framings and poison
+
+BIG_TOPIC = {"max.message.bytes": "8388608"}  # room for the 2 MB messages
+BIG_PRODUCER = {"message.max.bytes": 8388608}
+
+
+def _json_text(pkt, **replace):
+    """json.dumps of pkt, then each placeholder string "__K__" replaced by
+    the raw text replace[K] (for tokens Python would not write)."""
+    text = json.dumps(pkt)
+    for k, v in replace.items():
+        text = text.replace(f'"__{k}__"', v)
+    return text.encode()
+
+
+def _rand_bytes(rng, n, first):
+    return bytes([first]) + bytes(rng.randrange(256) for _ in range(n - 1))
+
+
+def _run_mixed(broker, new_topic, oddsky, tmp_path, tag, segments, cfg_kw):
+    """Fill a 1-partition topic with the segments in order, run the daemon
+    over it and check every message's outcome.
+
+    A segment is ("sim", format, count, seed, framing, extra simulate kw)
+    or ("raw", callable(inputs so far) -> [(bytes, expected)]) where
+    expected is ("result", framing) or ("dead", reason)."""
+    in_t = new_topic(1, prefix=f"{tag}-in", config=BIG_TOPIC)
+    out_t = new_topic(1, prefix=f"{tag}-out")
+    dlq_t = new_topic(1, prefix=f"{tag}-dlq", config=BIG_TOPIC)
+    expect = {}  # offset -> ("result", framing) | ("dead", reason)
+    raw_bytes = {}
+    for seg in segments:
+        start = ku.end_offsets(broker, in_t)[0]
+        if seg[0] == "sim":
+            _, fmt, count, seed, framing, kw = seg
+            du.simulate_to_topic(broker, in_t, count, seed=seed, fmt=fmt, **kw)
+            end = ku.end_offsets(broker, in_t)[0]
+            assert end - start == count
+            for o in range(start, end):
+                expect[o] = ("result", framing)
+        else:
+            so_far = du.input_index(broker, in_t)
+            items = seg[1](so_far, expect)
+            got = ku.produce(broker, in_t, [b for b, _ in items], partition=0,
+                             extra_config=BIG_PRODUCER)
+            for (b, e), (p, o) in zip(items, got):
+                expect[o] = e
+                raw_bytes[o] = b
+    inputs = du.input_index(broker, in_t)
+    assert sorted(o for _, o in inputs) == sorted(expect)
+    n_good = sum(1 for e in expect.values() if e[0] == "result")
+    n_dead = len(expect) - n_good
+    want_reasons = {}
+    for e in expect.values():
+        if e[0] == "dead":
+            want_reasons[e[1]] = want_reasons.get(e[1], 0) + 1
+
+    port = ku.free_port()
+    cfg = du.make_config(broker, [in_t], out_t, dlq_t, ku.unique_name("g"),
+                         tmp_path / "state", status_port=port,
+                         producer=BIG_PRODUCER, **cfg_kw)
+    proc = oddsky(cfg)
+    t0 = time.monotonic()
+    # Wait on the topics themselves (not on the daemon's counters).
+    du.wait_status(proc, port, lambda d: d["counts"]["packets"] >= len(expect)
+                   and sum(ku.end_offsets(broker, out_t).values()) >= n_good
+                   and sum(ku.end_offsets(broker, dlq_t).values()) >= n_dead,
+                   90, f"{n_good} results and {n_dead} dead letters on the topics")
+    # Let any late (wrong) extra output arrive before reading back.
+    time.sleep(1.0)
+    doc = du.status(port)
+    print(f"\n[{tag}] {len(expect)} messages ({n_good} good, {n_dead} poison) handled in "
+          f"{time.monotonic() - t0:.1f} s; status results {doc['counts']['results']}, "
+          f"dead letters {du.dead_letter_total(doc)}")
+    results = du.parse_results(du.read_topic(broker, out_t, n=None))
+    dead = du.read_topic(broker, dlq_t, n=None)
+    rc, secs, killed = du.stop(proc)
+    assert (rc, killed) == (0, False), du.log_tail(proc)
+
+    # Every good message: exactly one result, naming it, with the packet id
+    # fastavro / json read from the input bytes.
+    seen = {}
+    for rec, res, hdr in results:
+        o = int(hdr["oddsky.input.offset"])
+        assert hdr["oddsky.input.topic"] == in_t and hdr["oddsky.input.partition"] == "0"
+        assert o in expect, f"result for unknown offset {o}"
+        assert expect[o][0] == "result", \
+            f"offset {o} (expected dead letter {expect[o][1]}) got a result {res}"
+        pkt = du.avro_packet(inputs[(0, o)].value, expect[o][1])
+        assert res["packet_id"] == str(pkt["packet_id"]), (o, expect[o])
+        assert res["source_id"] == str(pkt["source"]["id"])
+        seen[o] = seen.get(o, 0) + 1
+    no_result = [(o, expect[o][1]) for o, e in sorted(expect.items())
+                 if e[0] == "result" and o not in seen]
+    twice = {o: c for o, c in seen.items() if c > 1}
+    assert not no_result, f"{len(no_result)} good packets without a result: {no_result[:10]}"
+    assert not twice, f"results seen twice: {twice}"
+
+    # Every poison message: one dead letter, original bytes, its reason.
+    got_dead = {}
+    wrong = []
+    for r in dead:
+        hdr = du.headers_dict(r.headers)
+        o = int(hdr["oddsky.input.offset"])
+        assert hdr["oddsky.input.topic"] == in_t and hdr["oddsky.input.partition"] == "0"
+        assert o in expect
+        got_dead[o] = got_dead.get(o, 0) + 1
+        if expect[o][0] != "dead" or hdr.get("oddsky.reason") != expect[o][1]:
+            wrong.append((o, expect[o], hdr.get("oddsky.reason"), hdr.get("oddsky.reason.text")))
+            continue
+        assert (r.value or b"") == inputs[(0, o)].value == raw_bytes[o], \
+            f"dead letter {o} does not carry the original bytes"
+        assert hdr.get("oddsky.reason.text"), f"dead letter {o} has no reason text"
+    assert not wrong, f"dead letters with the wrong reason (offset, expected, got, text): {wrong}"
+    missing_dead = [(o, expect[o][1]) for o, e in expect.items()
+                    if e[0] == "dead" and o not in got_dead]
+    assert not missing_dead, f"poison messages with no dead letter: {missing_dead}"
+    assert all(c == 1 for c in got_dead.values()), got_dead
+
+    # The status counters agree with the topics (all compared, then one
+    # assertion naming every mismatch).
+    dl = {k: v for k, v in doc["counts"]["dead_letters"].items() if v}
+    print(f"[{tag}] dead letters by reason: {dl}")
+    bad = []
+    if dl != want_reasons:
+        bad.append(f"counts.dead_letters {dl} != dead-letter topic {want_reasons}")
+    if doc["counts"]["packets"] != len(expect):
+        bad.append(f"counts.packets {doc['counts']['packets']} != {len(expect)} messages")
+    if doc["counts"]["results"] != n_good:
+        # integ-bugs.md #1: results_total also counts dead letters.
+        bad.append(f"counts.results {doc['counts']['results']} != {n_good} results on the "
+                   f"output topic (it counts the {n_dead} dead letters too)")
+    assert not bad, "; ".join(bad)
+
+
+def test_mixed_framings_with_schema_dir_and_poison(broker, new_topic, oddsky, tmp_path):
+    """JSON, Avro container and schema-id framing on one topic (schema
+    directory configured, no bare writer schema), with poison messages in
+    between and good packets after them."""
+    import random
+    schema_dir = du.write_schema_dir(tmp_path / "schemas", 7)
+    rng = random.Random(20240601)
+
+    def poison(so_far, expect):
+        by = {}
+        for (p, o), r in sorted(so_far.items()):
+            by.setdefault(expect[o][1], r.value)
+        js = json.loads(by["json"])
+        cont, sid = by["container"], by["schema_id"]
+        nan = dict(js, obs=dict(js["obs"], mag="__X__"))
+        big_id = dict(js, packet_id="__X__")
+        no_id = {k: v for k, v in js.items() if k != "packet_id"}
+        huge = dict(js, note="x" * (2 * 1024 * 1024))
+        deep = b'{"a":' * 10000 + b"1" + b"}" * 10000
+        return [
+            # source: daemon/packet.h reasons; common practice for the cases.
+            (b"", ("dead", "empty")),
+            (_rand_bytes(rng, 300, 0x7F), ("dead", "unknown_framing")),
+            (cont[:len(cont) // 2], ("dead", "bad_container")),
+            (cont[:12], ("dead", "bad_container")),
+            (b"\x00\x00\x00\x00\x63" + sid[5:], ("dead", "unknown_schema_id")),
+            (sid[:len(sid) - 7], ("dead", "bad_avro")),
+            (sid + b"\x00", ("dead", "bad_avro")),  # trailing byte
+            # source: RFC 8259 section 6 (no NaN / Infinity tokens);
+            # from memory: jansson refuses a real that overflows a double
+            # ("real number overflow") and an integer beyond json_int_t.
+            (_json_text(nan, X="NaN"), ("dead", "bad_json")),
+            (_json_text(nan, X="Infinity"), ("dead", "bad_json")),
+            (_json_text(nan, X="1e400"), ("dead", "bad_json")),
+            (_json_text(big_id, X="1" + "0" * 30), ("dead", "bad_json")),
+            (b"{not json", ("dead", "bad_json")),
+            (deep, ("dead", "json_too_deep")),
+            (json.dumps(huge).encode(), ("dead", "too_large")),
+            (b"[1, 2, 3]", ("dead", "not_an_object")),
+            (json.dumps(no_id).encode(), ("dead", "missing_id")),
+        ]
+
+    segments = [
+        ("sim", "json", 600, 101, "json", {}),
+        ("sim", "avro-container", 600, 102, "container", {}),
+        ("sim", "avro-schema-id", 600, 103, "schema_id", {"schema_id": 7}),
+        ("raw", poison),
+        ("sim", "json", 400, 104, "json", {}),
+        ("sim", "avro-schema-id", 200, 105, "schema_id", {"schema_id": 7}),
+    ]
+    _run_mixed(broker, new_topic, oddsky, tmp_path, "mixA", segments,
+               {"schema_dir": schema_dir})
+
+
+def test_bare_avro_with_writer_schema_and_poison(broker, new_topic, oddsky, tmp_path):
+    """Bare Avro (only input.writer_schema configured, so a leading 0x00 is
+    bare Avro, daemon/decode.h rule 2), JSON and containers on one topic,
+    a 2 MB JSON packet within max_message_bytes, poison in between."""
+    import random
+    rng = random.Random(777)
+
+    def mixed(so_far, expect):
+        by = {}
+        for (p, o), r in sorted(so_far.items()):
+            by.setdefault(expect[o][1], r.value)
+        bare = by["bare"]
+        pkt = du.avro_packet(bare, "bare")
+        zero = du.bare_avro(dict(pkt, packet_id=0))
+        # source: Avro specification, binary encoding: long 0 zig-zags to 0x00.
+        assert zero[0] == 0
+        js = json.loads(by["json"])
+        huge = json.dumps(dict(js, note="y" * (2 * 1024 * 1024))).encode()
+        assert 2 * 1024 * 1024 < len(huge) < 4 * 1024 * 1024
+        return [
+            (zero, ("result", "bare")),
+            (huge, ("result", "json")),
+            (bare[:len(bare) - 5], ("dead", "bad_avro")),
+            (bare + b"\x01\x02", ("dead", "bad_avro")),
+            (_rand_bytes(rng, 300, 0x7F), ("dead", "bad_avro")),
+            (b"\x00\x00\x00\x00\x07" + bare, ("dead", "bad_avro")),
+            (b"x" * (5 * 1024 * 1024), ("dead", "too_large")),
+        ]
+
+    segments = [
+        ("sim", "avro-bare", 600, 201, "bare", {}),
+        ("sim", "json", 300, 202, "json", {}),
+        ("sim", "avro-container", 300, 203, "container", {}),
+        ("raw", mixed),
+        ("sim", "avro-bare", 400, 204, "bare", {}),
+    ]
+    _run_mixed(broker, new_topic, oddsky, tmp_path, "mixB", segments,
+               {"writer_schema": du.PACKET_SCHEMA, "max_message_bytes": 4 * 1024 * 1024})
