@@ -35,6 +35,7 @@ struct bus_ticket {
     int64_t consumed_us;
     int64_t broker_ts_ms;
     int sealed;           /* handler returned: no more outputs */
+    int tag;              /* the handler's mark, see bus_ticket_set_tag */
     bus_ticket *next_free;
 };
 
@@ -191,7 +192,8 @@ static void ticket_finish(bus *b, bus_ticket *t)
         }
     }
     if (b->cb.on_done)
-        b->cb.on_done(b->cb.ctx, now_us() - t->consumed_us, t->broker_ts_ms);
+        b->cb.on_done(b->cb.ctx, now_us() - t->consumed_us, t->broker_ts_ms,
+                      t->tag);
     ticket_release(b, t);
 }
 
@@ -440,6 +442,7 @@ static void serve_consumer(bus *b)
             t->remaining = 0;
             t->attempts = 0;
             t->sealed = 0;
+            t->tag = 0;
             t->consumed_us = now_us();
             t->broker_ts_ms = rd_kafka_message_timestamp(m, NULL);
             int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
@@ -733,6 +736,11 @@ int bus_produce(bus *b, bus_ticket *t, rd_kafka_topic_t *rkt, const void *key,
                 rd_kafka_err2str(e));
         return -EIO;
     }
+}
+
+void bus_ticket_set_tag(bus_ticket *t, int tag)
+{
+    t->tag = tag;
 }
 
 void bus_stop_consuming(bus *b)

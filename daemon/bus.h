@@ -56,9 +56,11 @@ typedef struct bus_callbacks {
     /* A partition is being revoked (after its in-flight results were
      * flushed). May be NULL. */
     void (*on_revoke)(void *ctx, const char *topic, int32_t partition);
-    /* Every output of a ticket was delivered; latency from consume.  May
-     * be NULL. */
-    void (*on_done)(void *ctx, int64_t latency_us, int64_t broker_ts_ms);
+    /* Every output of a ticket was delivered; latency from consume, and
+     * the tag the handler set with bus_ticket_set_tag (0 by default).
+     * May be NULL. */
+    void (*on_done)(void *ctx, int64_t latency_us, int64_t broker_ts_ms,
+                    int tag);
     /* A permanent failure: the daemon must stop.  Offsets of failed
      * deliveries are never stored. */
     void (*on_fatal)(void *ctx, const char *why);
@@ -125,6 +127,10 @@ int bus_produce(bus *b, bus_ticket *t, rd_kafka_topic_t *rkt, const void *key,
                 size_t key_len, const void *payload, size_t len,
                 const bus_header *headers, uint32_t n_headers, char *err,
                 size_t err_len);
+
+/* Mark a ticket with a small caller value handed back in on_done (the
+ * daemon tells results from dead letters this way). */
+void bus_ticket_set_tag(bus_ticket *t, int tag);
 
 /* Stop taking new messages (drain starts).  Outstanding deliveries go on. */
 void bus_stop_consuming(bus *b);

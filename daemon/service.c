@@ -35,6 +35,7 @@
 #define HDR_REASON_TEXT "oddsky.reason.text"
 #define PAUSED_UNHEALTHY_S 60
 #define HIST_GROUPS 48
+#define TAG_RESULT 1 /* bus ticket tag: the packet got a result */
 
 static const double latency_bounds[] = {0.0005, 0.001, 0.0025, 0.005, 0.01,
                                         0.025, 0.05, 0.1, 0.25, 0.5, 1,
@@ -416,6 +417,7 @@ static void on_message(void *ctx, bus *b, const rd_kafka_message_t *m,
         produce_dead(s, b, t, m, 1, err, h, 3);
         return;
     }
+    bus_ticket_set_tag(t, TAG_RESULT);
     if (out.flag) {
         metrics_inc(metrics_counter_at(s->m_flags, 0));
         if (s->flag_rkt &&
@@ -455,10 +457,12 @@ static void on_revoke(void *ctx, const char *topic, int32_t part)
                 "partition revoked");
 }
 
-static void on_done(void *ctx, int64_t latency_us, int64_t broker_ts_ms)
+static void on_done(void *ctx, int64_t latency_us, int64_t broker_ts_ms, int tag)
 {
     service *s = ctx;
     (void)broker_ts_ms;
+    if (tag != TAG_RESULT)
+        return; /* a dead letter: counted when it was produced */
     metrics_inc(metrics_counter_at(s->m_results, 0));
     metrics_observe(metrics_hist_at(s->m_latency, 0), (double)latency_us * 1e-6);
 }
