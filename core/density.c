@@ -10,6 +10,14 @@
  * and lden[k, j] = log(T + P), so log h = tab[b] - lden (- r^2/2 in the
  * tails).  c/g is unchanged by the clock's renormalisation, so a renorm
  * scales counts and built_g alike and leaves the tables valid.
+ *
+ * Cost: lden_sum[k] = sum_j lden[k, j] is kept beside the tables, so a
+ * vector with every feature observed reads one table entry per feature
+ * and subtracts lden_sum[k] + sum_j log s_kj (kmeans' log_spread_sum)
+ * once per cluster.  The histograms of one cluster get the same inserts
+ * on every feature unless a feature was missing, so their totals are
+ * usually equal and an update computes log(T + P) once and copies it
+ * while the totals stay bit-identical.
  */
 #include "density.h"
 
@@ -20,6 +28,7 @@
 #include "decay.h"
 #include "err.h"
 #include "select.h"
+#include "vec.h"
 
 struct density {
     density_params p;
@@ -30,7 +39,9 @@ struct density {
     double *total;     /* k x dim */
     float *tab;        /* k x dim x nb */
     double *lden;      /* k x dim */
+    double *lden_sum;  /* k: sum over j of lden, in index order */
     double *built_g;   /* k: clock g when k's tables were built */
+    uint8_t *skip;     /* dim scratch: feature not observed */
     decay_clock clk;
 };
 
@@ -57,6 +68,17 @@ static int params_ok(const density_params *p)
 
 static double norm_cdf(double x) { return 0.5 * erfc(-x / M_SQRT2); }
 
+/* lden_sum[k] from k's lden row (index order, so a load rebuilds it
+ * bit for bit). */
+static void sum_lden(density *ds, uint32_t k)
+{
+    const double *l = ds->lden + (size_t)k * ds->p.dim;
+    double s = 0;
+    for (uint32_t j = 0; j < ds->p.dim; j++)
+        s += l[j];
+    ds->lden_sum[k] = s;
+}
+
 /* Rebuild every table of cluster k at the clock's current g. */
 static void build_cluster(density *ds, uint32_t k)
 {
@@ -75,6 +97,7 @@ static void build_cluster(density *ds, uint32_t k)
                                         ? ds->log_norm_tail : lw));
         }
     }
+    sum_lden(ds, k);
     ds->built_g[k] = g;
 }
 
@@ -96,9 +119,11 @@ density *density_new(const density_params *p, int *err)
     ds->total = calloc(hk, sizeof(double));
     ds->tab = calloc(hk * ds->nb, sizeof(float));
     ds->lden = calloc(hk, sizeof(double));
+    ds->lden_sum = calloc(p->k, sizeof(double));
     ds->built_g = calloc(p->k, sizeof(double));
+    ds->skip = calloc(p->dim, 1);
     if (!ds->phi || !ds->count || !ds->total || !ds->tab || !ds->lden ||
-        !ds->built_g)
+        !ds->lden_sum || !ds->built_g || !ds->skip)
         goto fail_arrays;
     ds->width = 2 * p->range / p->bins;
     ds->inv_width = 1.0 / ds->width;
@@ -133,7 +158,9 @@ void density_free(density *ds)
     free(ds->total);
     free(ds->tab);
     free(ds->lden);
+    free(ds->lden_sum);
     free(ds->built_g);
+    free(ds->skip);
     free(ds);
 }
 
@@ -142,7 +169,7 @@ size_t density_bytes(const density *ds)
     size_t hk = (size_t)ds->p.k * ds->p.dim;
     return sizeof *ds + ds->nb * sizeof(double) +
            hk * ds->nb * (sizeof(double) + sizeof(float)) +
-           hk * 2 * sizeof(double) + ds->p.k * sizeof(double);
+           hk * 2 * sizeof(double) + ds->p.k * 2 * sizeof(double) + ds->p.dim;
 }
 
 const density_params *density_get_params(const density *ds) { return &ds->p; }
@@ -163,30 +190,64 @@ static inline uint32_t bin_of(const density *ds, double r)
     return 1 + (b < ds->p.bins ? b : ds->p.bins - 1);
 }
 
-double density_log_cluster(density *ds, const kmeans *km, uint32_t k,
-                           const double *z, const uint8_t *miss)
+/* (d / obs) sum_j (log h_kj(r_kj) - log s_kj) over the observed features:
+ * skip NULL means all d are observed (obs == d), else skip[j] marks the
+ * ones left out. */
+static double cluster_term(density *ds, const kmeans *km, uint32_t k,
+                           const double *z, const uint8_t *skip, uint32_t obs)
 {
-    uint32_t d = ds->p.dim, nb = ds->nb, obs = 0;
+    const uint32_t d = ds->p.dim, nb = ds->nb;
     maybe_rebuild(ds, k);
     kmeans_cluster_view v;
     kmeans_cluster(km, k, &v);
     const float *tab = ds->tab + (size_t)k * d * nb;
+    const double *c = v.centroid, *is = v.inv_spread;
+    if (!skip) {
+        double sum = 0, tails = 0;
+        for (uint32_t j = 0; j < d; j++, tab += nb) {
+            double r = (z[j] - c[j]) * is[j];
+            uint32_t b = bin_of(ds, r);
+            sum += (double)tab[b];
+            if (b == 0 || b == nb - 1)
+                tails += 0.5 * r * r;
+        }
+        return (sum - tails) - (ds->lden_sum[k] + v.log_spread_sum);
+    }
     const double *lden = ds->lden + (size_t)k * d;
     double sum = 0;
     for (uint32_t j = 0; j < d; j++, tab += nb) {
-        if ((miss && miss[j]) || !isfinite(z[j]))
+        if (skip[j])
             continue;
-        obs++;
-        double r = (z[j] - v.centroid[j]) * v.inv_spread[j];
+        double r = (z[j] - c[j]) * is[j];
         uint32_t b = bin_of(ds, r);
-        double term = (double)tab[b] - lden[j] - v.log_spread[j];
+        double term = (double)tab[b] - lden[j];
         if (b == 0 || b == nb - 1)
             term -= 0.5 * r * r;
         sum += term;
     }
+    sum -= vec_sum_log(v.spread, skip, d);
+    return sum * ((double)d / (double)obs);
+}
+
+/* Observed features of z into ds->skip; returns their count. */
+static uint32_t observed(density *ds, const double *z, const uint8_t *miss)
+{
+    uint32_t obs = 0;
+    for (uint32_t j = 0; j < ds->p.dim; j++) {
+        uint8_t sk = (miss && miss[j]) || !isfinite(z[j]);
+        ds->skip[j] = sk;
+        obs += !sk;
+    }
+    return obs;
+}
+
+double density_log_cluster(density *ds, const kmeans *km, uint32_t k,
+                           const double *z, const uint8_t *miss)
+{
+    uint32_t obs = observed(ds, z, miss);
     if (obs == 0)
         return 0;
-    return obs == d ? sum : sum * ((double)d / (double)obs);
+    return cluster_term(ds, km, k, z, obs == ds->p.dim ? NULL : ds->skip, obs);
 }
 
 double density_log(density *ds, const kmeans *km, const double *z,
@@ -195,11 +256,10 @@ double density_log(density *ds, const kmeans *km, const double *z,
 {
     if (m == 0)
         return NAN;
-    uint32_t obs = 0;
-    for (uint32_t j = 0; j < ds->p.dim; j++)
-        obs += !((miss && miss[j]) || !isfinite(z[j]));
+    uint32_t obs = observed(ds, z, miss);
     if (obs == 0)
         return 0;
+    const uint8_t *skip = obs == ds->p.dim ? NULL : ds->skip;
     double tot = kmeans_total_weight(km, t);
     double log_tot = tot > 0 ? log(tot) : 0;
     enum { MAXM = 64 };
@@ -209,7 +269,7 @@ double density_log(density *ds, const kmeans *km, const double *z,
     double mx = -INFINITY;
     for (uint32_t i = 0; i < m; i++) {
         a[i] = kmeans_log_weight(km, idx[i], t) - log_tot +
-               density_log_cluster(ds, km, idx[i], z, miss);
+               cluster_term(ds, km, idx[i], z, skip, obs);
         if (a[i] > mx)
             mx = a[i];
     }
@@ -240,6 +300,9 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
     kmeans_cluster_view v;
     kmeans_cluster(km, k, &v);
     double lw = log(ds->width);
+    /* the last total whose log was taken, and that log */
+    double last_total = NAN, last_lden = 0;
+    int touched = 0;
     for (uint32_t j = 0; j < d; j++) {
         if ((miss && miss[j]) || !isfinite(z[j]))
             continue;
@@ -254,10 +317,19 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
         double num = log(c[b] / g + P * ds->phi[b]);
         ds->tab[h * nb + b] = (float)(num - ((b == 0 || b == nb - 1)
                                                  ? ds->log_norm_tail : lw));
-        ds->lden[h] = log(ds->total[h] / g + P);
+        /* log(total / g + P) is a function of total: equal totals (the
+         * usual case, see above) share one log */
+        if (!(ds->total[h] == last_total)) {
+            last_total = ds->total[h];
+            last_lden = log(last_total / g + P);
+        }
+        ds->lden[h] = last_lden;
+        touched = 1;
     }
     if (rebuild)
         build_cluster(ds, k);
+    else if (touched)
+        sum_lden(ds, k);
 }
 
 void density_reset(density *ds, uint32_t k)
@@ -365,5 +437,7 @@ int density_load(density *ds, snap_reader *r)
     snap_get_f32s(r, ds->tab, hk * nb);
     snap_get_f64s(r, ds->lden, hk);
     snap_get_f64s(r, ds->built_g, k);
+    for (uint32_t c = 0; c < k; c++)
+        sum_lden(ds, c);
     return r->err;
 }

@@ -20,9 +20,11 @@
  * nearest ones, as DESIGN allows).
  *
  * Cost: log h per bin is tabulated (float) together with log(total + P)
- * per histogram, so a read is an index and two subtractions per feature;
- * an update recomputes the touched bin and the total (two log() calls per
- * feature).  Because decay shrinks counts against the fixed pseudo-count,
+ * per histogram and its sum over the cluster's features, so a read of a
+ * fully observed vector is an index and an add per feature plus one
+ * subtraction per cluster; an update recomputes the touched bin (one
+ * log() per feature) and log(total + P), once per cluster while the
+ * feature totals are equal.  Because decay shrinks counts against the fixed pseudo-count,
  * a cluster's tables are rebuilt when the clock has grown by more than
  * `refresh_tol` (relative) since they were built; between rebuilds the
  * pseudo-count's weight is off by at most that fraction.

@@ -1,12 +1,20 @@
 /*
  * kmeans.c - online k-means with lazy event-time decay (see kmeans.h).
  *
- * Storage per cluster k: double c, v (variance), s, 1/s, log s (dim each)
- * for learning and for the density; float mirrors cf (centroid), rf (1/s^2)
- * and s2f (s^2) padded to dp = vec_padded(dim) with zeros for the assign
- * loop.  expire[k] is the time at which n_k(t) crosses retire_weight, so
- * retirement is a comparison, and next_expire (a lower bound of all
- * expire[k]) makes the no-op case O(1).
+ * Storage per cluster k: double c, v (variance), s, 1/s (dim each) for
+ * learning and for the density, the sum of log s (one log per refresh,
+ * vec_sum_log) and log n_k.  The assign loop reads float mirrors cf
+ * (centroid), rf (1/s^2) and s2f (s^2) stored feature-major, cf[j * kp +
+ * k], with the cluster count padded to kp = vec_padded(k) (padding
+ * clusters are zero and never reported), so one feature's values for
+ * every cluster are contiguous and the loop runs four clusters per SSE2
+ * vector: for each cluster the sum over features is plain sequential
+ * float arithmetic, the same in every run.  expire[k] is the time at which
+ * n_k(t) crosses retire_weight, so retirement is a comparison, and
+ * next_expire (a lower bound of all expire[k]) makes the no-op case O(1).
+ * A two-entry memo of the last decay factors (keyed by the exact time
+ * difference) lets kmeans_weight / kmeans_update and kmeans_total_weight /
+ * the total's update share one exp2; it is a pure cache, never saved.
  */
 #include "kmeans.h"
 
@@ -19,13 +27,13 @@
 
 struct kmeans {
     kmeans_params p;
-    uint32_t dp;
+    uint32_t kp;
     int seeded;
     uint64_t retired;
     rng r;
-    double *c, *v, *s, *inv_s, *log_s; /* k x dim */
-    double *log_s_sum, *n, *last, *expire; /* k */
-    float *cf, *rf, *s2f;                  /* k x dp */
+    double *c, *v, *s, *inv_s;             /* k x dim */
+    double *log_s_sum, *n, *log_n, *last, *expire; /* k */
+    float *cf, *rf, *s2f;                  /* dim x kp, feature-major */
     double tot, tot_t;                     /* decayed total at tot_t */
     double next_expire;
     /* candidate ring */
@@ -33,8 +41,12 @@ struct kmeans {
     uint8_t *cand_used;
     uint32_t cand_head, cand_count;
     /* scratch */
-    float *zf, *mf, *ef2;
-    double *d2;
+    float *zf, *ef2, *d2f;
+    uint32_t *obs_j;
+    double *s2;
+    /* decay memo: dt -> 2^(-dt/H), two entries, round robin */
+    double memo_dt[2], memo_f[2];
+    unsigned memo_next;
 };
 
 void kmeans_params_default(kmeans_params *p, uint32_t dim, uint32_t k)
@@ -70,16 +82,16 @@ kmeans *kmeans_new(const kmeans_params *p, int *err)
     if (!km)
         goto fail;
     km->p = *p;
-    km->dp = vec_padded(p->dim);
-    size_t kd = (size_t)p->k * p->dim, kp = (size_t)p->k * km->dp;
+    km->kp = vec_padded(p->k);
+    size_t kd = (size_t)p->k * p->dim, kp = (size_t)km->kp * p->dim;
     size_t cn = p->candidates ? p->candidates : 1;
     km->c = calloc(kd, sizeof(double));
     km->v = calloc(kd, sizeof(double));
     km->s = calloc(kd, sizeof(double));
     km->inv_s = calloc(kd, sizeof(double));
-    km->log_s = calloc(kd, sizeof(double));
     km->log_s_sum = calloc(p->k, sizeof(double));
     km->n = calloc(p->k, sizeof(double));
+    km->log_n = calloc(p->k, sizeof(double));
     km->last = calloc(p->k, sizeof(double));
     km->expire = calloc(p->k, sizeof(double));
     km->cf = calloc(kp, sizeof(float));
@@ -89,16 +101,19 @@ kmeans *kmeans_new(const kmeans_params *p, int *err)
     km->cand_score = calloc(cn, sizeof(double));
     km->cand_t = calloc(cn, sizeof(double));
     km->cand_used = calloc(cn, 1);
-    km->zf = calloc(km->dp, sizeof(float));
-    km->mf = calloc(km->dp, sizeof(float));
-    km->ef2 = calloc(km->dp, sizeof(float));
-    km->d2 = calloc(p->k, sizeof(double));
-    if (!km->c || !km->v || !km->s || !km->inv_s || !km->log_s ||
-        !km->log_s_sum || !km->n || !km->last || !km->expire || !km->cf ||
+    km->zf = calloc(p->dim, sizeof(float));
+    km->ef2 = calloc(p->dim, sizeof(float));
+    km->d2f = calloc(km->kp, sizeof(float));
+    km->obs_j = calloc(p->dim, sizeof(uint32_t));
+    km->s2 = calloc(p->dim, sizeof(double));
+    if (!km->c || !km->v || !km->s || !km->inv_s || !km->log_s_sum ||
+        !km->n || !km->log_n || !km->last || !km->expire || !km->cf ||
         !km->rf || !km->s2f || !km->cand_z || !km->cand_score ||
-        !km->cand_t || !km->cand_used || !km->zf || !km->mf || !km->ef2 ||
-        !km->d2)
+        !km->cand_t || !km->cand_used || !km->zf || !km->ef2 || !km->d2f ||
+        !km->obs_j || !km->s2)
         goto fail_arrays;
+    for (uint32_t cc = 0; cc < p->k; cc++)
+        km->log_n[cc] = -INFINITY;
     rng_seed(&km->r, p->seed);
     km->next_expire = INFINITY;
     if (err)
@@ -120,9 +135,9 @@ void kmeans_free(kmeans *km)
     free(km->v);
     free(km->s);
     free(km->inv_s);
-    free(km->log_s);
     free(km->log_s_sum);
     free(km->n);
+    free(km->log_n);
     free(km->last);
     free(km->expire);
     free(km->cf);
@@ -133,32 +148,54 @@ void kmeans_free(kmeans *km)
     free(km->cand_t);
     free(km->cand_used);
     free(km->zf);
-    free(km->mf);
     free(km->ef2);
-    free(km->d2);
+    free(km->d2f);
+    free(km->obs_j);
+    free(km->s2);
     free(km);
 }
 
 size_t kmeans_bytes(const kmeans *km)
 {
-    size_t kd = (size_t)km->p.k * km->p.dim, kp = (size_t)km->p.k * km->dp;
+    size_t kd = (size_t)km->p.k * km->p.dim, kp = (size_t)km->kp * km->p.dim;
     size_t cn = km->p.candidates ? km->p.candidates : 1;
-    return sizeof *km + kd * 5 * sizeof(double) +
-           (size_t)km->p.k * 5 * sizeof(double) + kp * 3 * sizeof(float) +
+    return sizeof *km + kd * 4 * sizeof(double) +
+           (size_t)km->p.k * 6 * sizeof(double) + kp * 3 * sizeof(float) +
            cn * (km->p.dim + 2) * sizeof(double) + cn +
-           (size_t)km->dp * 3 * sizeof(float);
+           (size_t)km->p.dim * (2 * sizeof(float) + sizeof(uint32_t) +
+                                sizeof(double)) +
+           (size_t)km->kp * sizeof(float);
 }
 
 const kmeans_params *kmeans_get_params(const kmeans *km) { return &km->p; }
 int kmeans_seeded(const kmeans *km) { return km->seeded; }
 uint64_t kmeans_retired(const kmeans *km) { return km->retired; }
 
-/* Decay factor from time a to time b (1 when b <= a or no decay). */
-static inline double decay_factor(const kmeans *km, double a, double b)
+/* Decay factor from time a to time b (1 when b <= a or no decay).  The
+ * memo is scratch (a kmeans is not shared between threads), hence the
+ * cast: the result is exactly exp2(-(b - a) / H) either way. */
+static inline double decay_factor(const kmeans *kmc, double a, double b)
 {
-    if (km->p.half_life_days <= 0 || !(b > a))
+    if (kmc->p.half_life_days <= 0 || !(b > a))
         return 1.0;
-    return exp2(-(b - a) / km->p.half_life_days);
+    kmeans *km = (kmeans *)kmc;
+    double dt = b - a;
+    if (dt == km->memo_dt[0])
+        return km->memo_f[0];
+    if (dt == km->memo_dt[1])
+        return km->memo_f[1];
+    double f = exp2(-dt / km->p.half_life_days);
+    unsigned i = km->memo_next;
+    km->memo_dt[i] = dt;
+    km->memo_f[i] = f;
+    km->memo_next = i ^ 1u;
+    return f;
+}
+
+/* log n_k, kept beside n_k (-INFINITY when n_k is not positive). */
+static inline void set_log_n(kmeans *km, uint32_t k)
+{
+    km->log_n[k] = km->n[k] > 0 ? log(km->n[k]) : -INFINITY;
 }
 
 static void refresh_expire(kmeans *km, uint32_t k)
@@ -179,25 +216,21 @@ static void refresh_expire(kmeans *km, uint32_t k)
 /* Recompute every derived array of cluster k from c and v. */
 static void refresh_cluster(kmeans *km, uint32_t k)
 {
-    uint32_t d = km->p.dim;
+    uint32_t d = km->p.dim, kp = km->kp;
     double fl2 = km->p.spread_floor * km->p.spread_floor;
     double *c = km->c + (size_t)k * d, *v = km->v + (size_t)k * d;
     double *s = km->s + (size_t)k * d, *is = km->inv_s + (size_t)k * d;
-    double *ls = km->log_s + (size_t)k * d;
-    float *cf = km->cf + (size_t)k * km->dp, *rf = km->rf + (size_t)k * km->dp;
-    float *s2f = km->s2f + (size_t)k * km->dp;
-    double sum = 0;
+    double *s2 = km->s2;
     for (uint32_t j = 0; j < d; j++) {
-        double s2 = v[j] > fl2 ? v[j] : fl2;
-        s[j] = sqrt(s2);
+        s2[j] = v[j] > fl2 ? v[j] : fl2;
+        s[j] = sqrt(s2[j]);
         is[j] = 1.0 / s[j];
-        ls[j] = 0.5 * log(s2);
-        sum += ls[j];
-        cf[j] = (float)c[j];
-        rf[j] = (float)(1.0 / s2);
-        s2f[j] = (float)s2;
+        km->cf[(size_t)j * kp + k] = (float)c[j];
+        km->rf[(size_t)j * kp + k] = (float)(1.0 / s2[j]);
+        km->s2f[(size_t)j * kp + k] = (float)s2[j];
     }
-    km->log_s_sum[k] = sum;
+    /* sum_j log s_j = (1/2) sum_j log s_j^2 */
+    km->log_s_sum[k] = 0.5 * vec_sum_log(s2, NULL, d);
 }
 
 /* Bring the total to time t. */
@@ -254,6 +287,7 @@ int kmeans_seed(kmeans *km, select_ws *ws, const double *Z, size_t n,
             v[j] = km->n[cc] >= 2 ? v[j] / km->n[cc] : init2;
         km->last[cc] = km->tot_t;
         km->tot += km->n[cc];
+        set_log_n(km, cc);
         refresh_cluster(km, cc);
         refresh_expire(km, cc);
     }
@@ -277,11 +311,52 @@ int kmeans_set_centres(kmeans *km, const double *centres, double n0, double t)
         km->n[cc] = n0;
         km->last[cc] = km->tot_t;
         km->tot += n0;
+        set_log_n(km, cc);
         refresh_cluster(km, cc);
         refresh_expire(km, cc);
     }
     km->seeded = 1;
     return 0;
+}
+
+typedef float km_v4f __attribute__((vector_size(16)));
+
+static inline km_v4f km_load4(const float *p)
+{
+    km_v4f v;
+    memcpy(&v, p, sizeof v);
+    return v;
+}
+
+/* d2f[k] = sum over the observed features j (obs_j, n_obs of them) of
+ * (z_j - c_kj)^2 w_kj, eight clusters at a time; with ef2 (squared scaled
+ * errors, or NULL) w_kj = 1 / (s_kj^2 + e_j^2), else w_kj = rf_kj. */
+static void assign_dists(kmeans *km, uint32_t n_obs, int with_err)
+{
+    const uint32_t kp = km->kp;
+    const uint32_t *oj = km->obs_j;
+    const float *zf = km->zf, *ef2 = km->ef2;
+    for (uint32_t b = 0; b < kp; b += 8) {
+        km_v4f a0 = {0, 0, 0, 0}, a1 = {0, 0, 0, 0};
+        for (uint32_t i = 0; i < n_obs; i++) {
+            size_t o = (size_t)oj[i] * kp + b;
+            float zs = zf[oj[i]];
+            km_v4f zv = {zs, zs, zs, zs};
+            km_v4f t0 = zv - km_load4(km->cf + o);
+            km_v4f t1 = zv - km_load4(km->cf + o + 4);
+            if (with_err) {
+                float es = ef2[oj[i]];
+                km_v4f ev = {es, es, es, es};
+                a0 += t0 * t0 / (km_load4(km->s2f + o) + ev);
+                a1 += t1 * t1 / (km_load4(km->s2f + o + 4) + ev);
+            } else {
+                a0 += t0 * t0 * km_load4(km->rf + o);
+                a1 += t1 * t1 * km_load4(km->rf + o + 4);
+            }
+        }
+        memcpy(km->d2f + b, &a0, sizeof a0);
+        memcpy(km->d2f + b + 4, &a1, sizeof a1);
+    }
 }
 
 int kmeans_nearest(kmeans *km, const double *z, const double *ez,
@@ -292,13 +367,13 @@ int kmeans_nearest(kmeans *km, const double *z, const double *ez,
         return CORE_EAGAIN;
     if (m == 0 || !z || !idx || !d2)
         return CORE_EINVAL;
-    uint32_t d = km->p.dim, dp = km->dp, k = km->p.k;
+    uint32_t d = km->p.dim, k = km->p.k;
     uint32_t obs = 0;
     int any_err = 0;
     for (uint32_t j = 0; j < d; j++) {
         int mj = (miss && miss[j]) || !isfinite(z[j]);
         km->zf[j] = mj ? 0.0f : (float)z[j];
-        km->mf[j] = mj ? 0.0f : 1.0f;
+        km->obs_j[obs] = j;
         obs += !mj;
         double e = (ez && !mj && isfinite(ez[j])) ? ez[j] : 0.0;
         km->ef2[j] = (float)(e * e);
@@ -313,31 +388,15 @@ int kmeans_nearest(kmeans *km, const double *z, const double *ez,
         }
         return (int)m;
     }
-    const float *zf = km->zf, *mf = km->mf;
-    if (any_err) {
-        for (uint32_t cc = 0; cc < k; cc++) {
-            const float *cf = km->cf + (size_t)cc * dp;
-            const float *s2f = km->s2f + (size_t)cc * dp;
-            float acc = 0;
-            for (uint32_t j = 0; j < d; j++) {
-                float t = (zf[j] - cf[j]) * mf[j];
-                acc += t * t / (s2f[j] + km->ef2[j]);
-            }
-            km->d2[cc] = acc;
-        }
-    } else if (obs == d) {
-        for (uint32_t cc = 0; cc < k; cc++)
-            km->d2[cc] = vec_wdist2_f(zf, km->cf + (size_t)cc * dp,
-                                      km->rf + (size_t)cc * dp, dp);
-    } else {
-        for (uint32_t cc = 0; cc < k; cc++)
-            km->d2[cc] = vec_mwdist2_f(zf, km->cf + (size_t)cc * dp,
-                                       km->rf + (size_t)cc * dp, mf, dp);
-    }
+    if (any_err)
+        assign_dists(km, obs, 1);
+    else
+        assign_dists(km, obs, 0);
     /* Partial insertion sort: the m smallest, ties to the lower index. */
+    const float *df = km->d2f;
     uint32_t got = 0;
     for (uint32_t cc = 0; cc < k; cc++) {
-        double v = km->d2[cc];
+        double v = df[cc];
         if (got == m && !(v < d2[m - 1]))
             continue;
         uint32_t pos = got < m ? got++ : m - 1;
@@ -387,6 +446,7 @@ void kmeans_update(kmeans *km, uint32_t k, const double *z,
             v[j] = 0;
     }
     km->n[k] = n;
+    set_log_n(km, k);
     if (tt > km->last[k])
         km->last[k] = tt;
     total_to(km, tt);
@@ -413,7 +473,7 @@ double kmeans_log_weight(const kmeans *km, uint32_t k, double t)
 {
     if (!(km->n[k] > 0))
         return -INFINITY;
-    double l = log(km->n[k]);
+    double l = km->log_n[k];
     if (km->p.half_life_days > 0 && t > km->last[k])
         l -= M_LN2 * (t - km->last[k]) / km->p.half_life_days;
     return l;
@@ -440,7 +500,6 @@ void kmeans_cluster(const kmeans *km, uint32_t k, kmeans_cluster_view *v)
     v->centroid = km->c + o;
     v->spread = km->s + o;
     v->inv_spread = km->inv_s + o;
-    v->log_spread = km->log_s + o;
     v->log_spread_sum = km->log_s_sum[k];
 }
 
@@ -505,6 +564,7 @@ uint32_t kmeans_retire(kmeans *km, double t, uint32_t *slots,
                 if (km->tot < 0)
                     km->tot = 0;
                 km->n[k] = 1.0;
+                set_log_n(km, k);
                 if (t > km->last[k])
                     km->last[k] = t;
                 refresh_cluster(km, k);
@@ -601,6 +661,7 @@ int kmeans_load(kmeans *km, snap_reader *r)
     }
     km->next_expire = INFINITY;
     for (uint32_t cc = 0; cc < k; cc++) {
+        set_log_n(km, cc);
         refresh_cluster(km, cc);
         refresh_expire(km, cc);
     }

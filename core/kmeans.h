@@ -14,9 +14,10 @@
  *
  * Distance: the diagonal Mahalanobis d^2 = sum_j (z_j - c_j)^2 /
  * (s_j^2 + e_j^2) over the observed features, times d / d_observed.
- * Without errors the assign loop reads float mirrors of c and 1/s^2 padded
- * to VEC_LANES, so it has no division; with errors it divides once per
- * (cluster, feature).
+ * Without errors the assign loop reads float mirrors of c and 1/s^2 laid
+ * out feature-major (every cluster's value of one feature side by side,
+ * four clusters per vector), so it has no division; with errors it
+ * divides once per (cluster, feature).
  *
  * Seeding: kmeans_seed() runs select_kmeans (k-means++ with restarts and
  * a few Lloyd passes) on a warm buffer; each cluster starts with its member
@@ -68,7 +69,6 @@ typedef struct kmeans_cluster_view {
     const double *centroid;   /* dim, z units */
     const double *spread;     /* dim, floored sd s */
     const double *inv_spread; /* dim, 1 / s */
-    const double *log_spread; /* dim, log s */
     double log_spread_sum;    /* sum_j log s_j */
 } kmeans_cluster_view;
 

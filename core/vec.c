@@ -8,6 +8,10 @@
  */
 #include "vec.h"
 
+#include <float.h>
+#include <math.h>
+#include <string.h>
+
 #define FOLD(acc)                                                        \
     do {                                                                 \
         for (unsigned l_ = 0; l_ < 4; l_++)                              \
@@ -152,4 +156,40 @@ void vec_to_float(const double *in, float *out, size_t n)
 {
     for (size_t i = 0; i < n; i++)
         out[i] = (float)in[i];
+}
+
+double vec_sum_log(const double *x, const uint8_t *skip, size_t n)
+{
+    double prod = 1.0, sum = 0.0;
+    int64_t exps = 0;
+    unsigned in_prod = 0;
+    for (size_t i = 0; i < n; i++) {
+        if (skip && skip[i])
+            continue;
+        double v = x[i];
+        if (!(v >= DBL_MIN && v <= DBL_MAX)) {
+            /* not a positive normal number: the plain sum */
+            double plain = 0.0;
+            for (size_t j = 0; j < n; j++)
+                if (!(skip && skip[j]))
+                    plain += log(x[j]);
+            return plain;
+        }
+        uint64_t bits;
+        memcpy(&bits, &v, sizeof bits);
+        exps += (int64_t)((bits >> 52) & 0x7ff) - 1023;
+        bits = (bits & ~(0x7ffull << 52)) | (1023ull << 52);
+        memcpy(&v, &bits, sizeof bits);
+        prod *= v; /* < 2^64 after 64 mantissas: no overflow */
+        if (++in_prod == 64) {
+            sum += log(prod);
+            prod = 1.0;
+            in_prod = 0;
+        }
+    }
+    if (in_prod)
+        sum += log(prod);
+    /* ln 2 in two parts (fdlibm): exps * hi is exact for |exps| < 2^20 */
+    double e = (double)exps;
+    return e * 6.93147180369123816490e-01 + (e * 1.90821492927058770002e-10 + sum);
 }

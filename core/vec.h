@@ -52,4 +52,12 @@ void vec_axpy_f(float alpha, const float *x, float *y, size_t n);
 /* out_i = (float)in_i */
 void vec_to_float(const double *in, float *out, size_t n);
 
+/* sum_i log(x_i) over the i with skip == NULL or skip[i] == 0, with one
+ * libm log per 64 terms: the x_i are split into binary exponent and
+ * mantissa in [1, 2), the mantissas multiplied and the exponents added
+ * (exact), so the result is within a few ulps of the plain sum of logs.
+ * Falls back to the plain sum when a term is not a positive normal
+ * number (zero, subnormal, infinite, NaN).  0 for no terms. */
+double vec_sum_log(const double *x, const uint8_t *skip, size_t n);
+
 #endif
