@@ -11,7 +11,6 @@ back; usage errors exit with sysexits.h codes.
 """
 import hashlib
 import json
-import math
 import os
 import subprocess
 
@@ -195,15 +194,13 @@ def test_vectors_out_matches_packets_and_scores_the_same(night):
     assert len(vecs) == len(pk) == 3000
     with open(os.path.join(TOP, "config", "demo-featmap.json")) as f:
         names = [ft["name"] for ft in json.load(f)["features"]]
-    j_mag, j_err, j_q = (names.index("mag"), names.index("log_mag_err"),
-                         names.index("quality"))
+    j_mag, j_q = names.index("mag"), names.index("quality")
     for v, p in zip(vecs, pk):
         assert v["id"] == str(p["packet_id"]) and v["label"] == p["truth"]
         assert v["time"] == p["obs"]["mjd"]
         assert v["x"][j_mag] == p["obs"]["mag"]
-        # source: numpy.log10
-        assert math.isclose(v["x"][j_err], float(np.log10(p["obs"]["mag_err"])),
-                            rel_tol=0, abs_tol=1e-15)
+        # source: the mag error travels as the feature's error (featmap.h)
+        assert v["err"][j_mag] == p["obs"]["mag_err"]
         assert v["x"][j_q] == p["obs"]["quality"]
     # Fed back as vector lines, the same features give the same scores.
     again = night / "again.jsonl"

@@ -1,0 +1,100 @@
+"""Evaluation on a simulated night: does oddsky rank the rare populations high?
+
+One night of 200,000 demo packets (oddsky simulate, default rare rates:
+5e-4 of the packets from each of the three rare populations, about 300
+rare packets) is replayed through config/demo.json.  Over the warm results
+the novelty score is compared with the simulator's truth: AUROC of the rare
+populations (truth starting with "rare_") against everything else, computed
+by scikit-learn (source: sklearn.metrics.roc_auc_score).  Printed beside it:
+the flags raised at the default budget, the fraction of them that are rare
+packets, and scikit-learn's IsolationForest (source:
+sklearn.ensemble.IsolationForest, default settings, random_state=0) fitted
+offline on exactly the same feature vectors (--vectors-out), with missing
+values imputed by the column median (IsolationForest cannot take NaN).
+
+The floor is the project's target, AUROC >= 0.90.  It is not met with the
+features available today (see the printed figures); the test is marked
+xfail(strict=True) so it reports the measured figure on every run and
+turns into a failure to be noticed once the target is reached.
+"""
+import json
+import os
+import subprocess
+
+import numpy as np
+import pytest
+
+TOP = os.environ.get("ODDSKY_TOP",
+                     os.path.dirname(os.path.dirname(os.path.dirname(
+                         os.path.abspath(__file__)))))
+BIN = os.environ.get("ODDSKY_BIN", os.path.join(TOP, "build", "oddsky"))
+DEMO = os.path.join(TOP, "config", "demo.json")
+FLOOR = 0.90
+
+
+def run(*args):
+    p = subprocess.run([BIN, *args], capture_output=True, text=True)
+    assert p.returncode == 0, f"{args}: exit {p.returncode}\n{p.stderr}"
+    return p
+
+
+@pytest.fixture(scope="module")
+def evaluated(tmp_path_factory):
+    from sklearn.ensemble import IsolationForest
+    from sklearn.metrics import roc_auc_score
+    d = tmp_path_factory.mktemp("eval")
+    night, res, vec = d / "night.avro", d / "results.jsonl", d / "vectors.jsonl"
+    run("simulate", "--seed", "7", "--count", "200000", "--format",
+        "avro-container", "--output", str(night))
+    p = run("replay", "--config", DEMO, "--input", str(night), "--output",
+            str(res), "--label-field", "truth", "--vectors-out", str(vec))
+    recs = [json.loads(l) for l in open(res)]
+    vecs = [json.loads(l) for l in open(vec)]
+    assert len(recs) == len(vecs) == 200000
+    warm = np.array([r["warm"] for r in recs])
+    rare = np.array([r["label"].startswith("rare_") for r in recs])
+    flag = np.array([r["flag"] for r in recs])
+    nov = np.array([np.inf if r["novelty"] is None else r["novelty"]
+                    for r in recs])
+    X = np.array([[np.nan if v is None else v for v in r["x"]] for r in vecs],
+                 dtype=float)
+    med = np.nanmedian(X, axis=0)
+    med = np.where(np.isnan(med), 0.0, med)
+    Xi = np.where(np.isnan(X), med, X)
+    iso = IsolationForest(random_state=0).fit(Xi)
+    iso_score = -iso.score_samples(Xi)
+    out = {
+        "rare_warm": int(rare[warm].sum()),
+        "auroc": roc_auc_score(rare[warm], nov[warm]),
+        "iforest_auroc": roc_auc_score(rare[warm], iso_score[warm]),
+        "flags": int(flag[warm].sum()),
+        "rare_flags": int((flag & rare)[warm].sum()),
+        "rare_fraction": rare[warm].mean(),
+        "summary": p.stderr.strip().splitlines()[-1],
+    }
+    out["rare_frac_of_flags"] = out["rare_flags"] / max(1, out["flags"])
+    print(f"\n{out['summary']}\n"
+          f"warm results with a rare truth: {out['rare_warm']} "
+          f"({100 * out['rare_fraction']:.2f}%)\n"
+          f"oddsky novelty AUROC {out['auroc']:.4f}; IsolationForest "
+          f"(median-imputed, same vectors) AUROC {out['iforest_auroc']:.4f}\n"
+          f"flags {out['flags']}, of them rare {out['rare_flags']} "
+          f"({100 * out['rare_frac_of_flags']:.1f}%)")
+    return out
+
+
+def test_enough_rare_packets(evaluated):
+    # The evaluation means little with only a handful of positives.
+    assert evaluated["rare_warm"] >= 200
+
+
+def test_flags_enrich_rare_packets(evaluated):
+    # Weaker than the floor, but it can fail: flags must hold a larger
+    # share of rare packets than the stream does.
+    assert evaluated["rare_frac_of_flags"] > evaluated["rare_fraction"]
+
+
+@pytest.mark.xfail(strict=True, reason="target AUROC 0.90 not reached yet; "
+                   "measured about 0.64 on this night (printed)")
+def test_novelty_auroc_floor(evaluated):
+    assert evaluated["auroc"] >= FLOOR
