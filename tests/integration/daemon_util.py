@@ -13,6 +13,7 @@ fails with a message instead of hanging.
 """
 import json
 import os
+import shutil
 import signal
 import subprocess
 import time
@@ -32,8 +33,18 @@ SCORE_FIELDS = ("cluster", "novelty", "tail_prob", "flag", "distance")
 def make_config(broker, inputs, output, dead_letters, group, state_dir,
                 status_port=None, warmup=512, checkpoint_interval_s=2,
                 schema_dir="", writer_schema="", max_message_bytes=None,
-                consumer=None, producer=None, extra_model=None):
-    """A complete `oddsky run` config dict; inputs is a list of topics."""
+                consumer=None, producer=None, extra_model=None, featmap=None):
+    """A complete `oddsky run` config dict; inputs is a list of topics.
+
+    The feature map is config/demo-featmap.json copied next to state_dir
+    (featmap.json, an absolute path) the first time, so a test that
+    restarts the daemon keeps the same map even if the working copy of
+    the file changes meanwhile."""
+    if featmap is None:
+        featmap = os.path.join(os.path.dirname(os.path.abspath(str(state_dir))),
+                               "featmap.json")
+        if not os.path.exists(featmap):
+            shutil.copyfile(FEATMAP, featmap)
     cfg = {
         "model": {"warmup_vectors": warmup, "seed": 1},
         "kafka": {
@@ -48,7 +59,7 @@ def make_config(broker, inputs, output, dead_letters, group, state_dir,
             "producer": {"linger.ms": 5, **(producer or {})},
         },
         "input": {"schema_dir": schema_dir, "writer_schema": writer_schema},
-        "featmap": FEATMAP,
+        "featmap": featmap,
         "output": {"format": "json"},
         "state": {"dir": str(state_dir), "checkpoint_interval_s": checkpoint_interval_s},
         "status": {"listen": "127.0.0.1",

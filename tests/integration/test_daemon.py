@@ -353,3 +353,86 @@ def test_bare_avro_with_writer_schema_and_poison(broker, new_topic, oddsky, tmp_
     ]
     _run_mixed(broker, new_topic, oddsky, tmp_path, "mixB", segments,
                {"writer_schema": du.PACKET_SCHEMA, "max_message_bytes": 4 * 1024 * 1024})
+
+
+# ----------------------------------------------------------------- two instances
+
+def _parts(doc):
+    return sorted(p["partition"] for p in doc.get("partitions") or [])
+
+
+def test_two_instances_split_the_partitions(broker, new_topic, oddsky, tmp_path):
+    """Two daemons in one consumer group on a 4-partition topic: each gets
+    some partitions, none shares one, every packet is scored."""
+    n = 20_000
+    in_t, out_t, dlq_t = _topics(new_topic, 4, "pair")
+    group = ku.unique_name("g")
+    ports = [ku.free_port(), ku.free_port()]
+    while ports[1] == ports[0]:
+        ports[1] = ku.free_port()
+    cfgs = [du.make_config(broker, [in_t], out_t, dlq_t, group, tmp_path / f"state-{x}",
+                           status_port=ports[i]) for i, x in enumerate("ab")]
+    t0 = time.monotonic()
+    a = oddsky(cfgs[0])
+    du.wait_assigned(a, ports[0], 4)
+    b = oddsky(cfgs[1])
+
+    def split(_):
+        da, db = du.status(ports[0]), du.status(ports[1])
+        if not da or not db:
+            return False
+        pa, pb = _parts(da), _parts(db)
+        return pa and pb and sorted(pa + pb) == [0, 1, 2, 3]
+    du.wait_status(b, ports[1], split, 90, "the two instances to split 4 partitions")
+    before = (_parts(du.status(ports[0])), _parts(du.status(ports[1])))
+    print(f"\n[pair] split after {time.monotonic() - t0:.1f} s: a {before[0]}, b {before[1]}")
+    # source: Apache Kafka documentation (consumer groups): each partition
+    # is consumed by exactly one member of the group.
+    assert before[0] and before[1] and not set(before[0]) & set(before[1])
+
+    du.simulate_to_topic(broker, in_t, n, seed=31337)
+    ends = ku.end_offsets(broker, in_t)
+    assert sum(ends.values()) == n
+
+    def caught_up(port):
+        def pred(doc):
+            ps = doc.get("partitions") or []
+            return ps and all(p["stored"] == ends[p["partition"]] for p in ps)
+        return pred
+    da = du.wait_status(a, ports[0], caught_up(ports[0]), 120, "instance a to catch up")
+    db = du.wait_status(b, ports[1], caught_up(ports[1]), 120, "instance b to catch up")
+    after = (_parts(da), _parts(db))
+    results = du.parse_results(du.read_topic(broker, out_t, n=None))
+    ids = [res["packet_id"] for _, res, _ in results]
+    dups = du.duplicates(ids)
+    print(f"[pair] {len(results)} results for {n} packets; a: partitions {after[0]} packets "
+          f"{da['counts']['packets']} learned {da['model']['learned']}; b: partitions "
+          f"{after[1]} packets {db['counts']['packets']} learned {db['model']['learned']}; "
+          f"duplicates: {du.summarize_dups(dups) if dups else 'none'}")
+    for proc in (a, b):
+        rc, secs, killed = du.stop(proc)
+        assert (rc, killed) == (0, False), du.log_tail(proc)
+
+    missing = {str(i) for i in range(1, n + 1)} - set(ids)
+    assert not missing, f"{len(missing)} packets without a result"
+    by_id = _check_results_against_input(broker, in_t, results, n)
+    assert len(by_id) == n
+    assert after[0] and after[1] and not set(after[0]) & set(after[1])
+    assert sorted(after[0] + after[1]) == [0, 1, 2, 3]
+    if after == before:
+        # No rebalance while the packets flowed: each instance read exactly
+        # its partitions, each packet once.
+        assert not dups, du.summarize_dups(dups)
+        for doc, parts in ((da, after[0]), (db, after[1])):
+            want = sum(ends[p] for p in parts)
+            assert doc["counts"]["packets"] == want
+            assert doc["model"]["learned"] == want
+    else:
+        print(f"[pair] the assignment changed during the stream: {before} -> {after}")
+    assert committed_all(broker, group, in_t, ends)
+
+
+def committed_all(broker, group, topic, ends):
+    got = ku.committed_offsets(broker, group, topic)
+    assert got == ends, f"committed {got}, end offsets {ends}"
+    return True
