@@ -42,6 +42,8 @@ struct density {
     double *lden_sum;  /* k: sum over j of lden, in index order */
     double *built_g;   /* k: clock g when k's tables were built */
     uint8_t *skip;     /* dim scratch: feature not observed */
+    float *arg;        /* max(dim, nb) scratch: arguments of vec_logf */
+    uint32_t *tb;      /* dim scratch: touched bin per feature */
     decay_clock clk;
 };
 
@@ -85,17 +87,19 @@ static void build_cluster(density *ds, uint32_t k)
     uint32_t d = ds->p.dim, nb = ds->nb;
     double g = decay_unit(&ds->clk), P = ds->p.pseudo;
     double lw = log(ds->width);
+    float *arg = ds->arg;
     for (uint32_t j = 0; j < d; j++) {
         size_t h = (size_t)k * d + j;
         const double *c = ds->count + h * nb;
         float *tab = ds->tab + h * nb;
         double T = ds->total[h] / g;
         ds->lden[h] = log(T + P);
-        for (uint32_t b = 0; b < nb; b++) {
-            double num = log(c[b] / g + P * ds->phi[b]);
-            tab[b] = (float)(num - ((b == 0 || b == nb - 1)
-                                        ? ds->log_norm_tail : lw));
-        }
+        for (uint32_t b = 0; b < nb; b++)
+            arg[b] = (float)(c[b] / g + P * ds->phi[b]);
+        vec_logf(arg, arg, nb);
+        for (uint32_t b = 0; b < nb; b++)
+            tab[b] = (float)((double)arg[b] -
+                             ((b == 0 || b == nb - 1) ? ds->log_norm_tail : lw));
     }
     sum_lden(ds, k);
     ds->built_g[k] = g;
@@ -122,8 +126,10 @@ density *density_new(const density_params *p, int *err)
     ds->lden_sum = calloc(p->k, sizeof(double));
     ds->built_g = calloc(p->k, sizeof(double));
     ds->skip = calloc(p->dim, 1);
+    ds->arg = calloc(p->dim > ds->nb ? p->dim : ds->nb, sizeof(float));
+    ds->tb = calloc(p->dim, sizeof(uint32_t));
     if (!ds->phi || !ds->count || !ds->total || !ds->tab || !ds->lden ||
-        !ds->lden_sum || !ds->built_g || !ds->skip)
+        !ds->lden_sum || !ds->built_g || !ds->skip || !ds->arg || !ds->tb)
         goto fail_arrays;
     ds->width = 2 * p->range / p->bins;
     ds->inv_width = 1.0 / ds->width;
@@ -161,6 +167,8 @@ void density_free(density *ds)
     free(ds->lden_sum);
     free(ds->built_g);
     free(ds->skip);
+    free(ds->arg);
+    free(ds->tb);
     free(ds);
 }
 
@@ -169,7 +177,9 @@ size_t density_bytes(const density *ds)
     size_t hk = (size_t)ds->p.k * ds->p.dim;
     return sizeof *ds + ds->nb * sizeof(double) +
            hk * ds->nb * (sizeof(double) + sizeof(float)) +
-           hk * 2 * sizeof(double) + ds->p.k * 2 * sizeof(double) + ds->p.dim;
+           hk * 2 * sizeof(double) + ds->p.k * 2 * sizeof(double) +
+           ds->p.dim * (1 + sizeof(uint32_t)) +
+           (ds->p.dim > ds->nb ? ds->p.dim : ds->nb) * sizeof(float);
 }
 
 const density_params *density_get_params(const density *ds) { return &ds->p; }
@@ -302,10 +312,12 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
     double lw = log(ds->width);
     /* the last total whose log was taken, and that log */
     double last_total = NAN, last_lden = 0;
-    int touched = 0;
+    uint32_t nt = 0;
     for (uint32_t j = 0; j < d; j++) {
-        if ((miss && miss[j]) || !isfinite(z[j]))
+        if ((miss && miss[j]) || !isfinite(z[j])) {
+            ds->tb[j] = UINT32_MAX;
             continue;
+        }
         size_t h = (size_t)k * d + j;
         double r = (z[j] - v.centroid[j]) * v.inv_spread[j];
         uint32_t b = bin_of(ds, r);
@@ -314,9 +326,9 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
         ds->total[h] += g;
         if (rebuild)
             continue;
-        double num = log(c[b] / g + P * ds->phi[b]);
-        ds->tab[h * nb + b] = (float)(num - ((b == 0 || b == nb - 1)
-                                                 ? ds->log_norm_tail : lw));
+        ds->tb[j] = b;
+        ds->arg[j] = (float)(c[b] / g + P * ds->phi[b]);
+        nt++;
         /* log(total / g + P) is a function of total: equal totals (the
          * usual case, see above) share one log */
         if (!(ds->total[h] == last_total)) {
@@ -324,12 +336,26 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
             last_lden = log(last_total / g + P);
         }
         ds->lden[h] = last_lden;
-        touched = 1;
     }
-    if (rebuild)
+    if (rebuild) {
         build_cluster(ds, k);
-    else if (touched)
-        sum_lden(ds, k);
+        return;
+    }
+    if (nt == 0)
+        return;
+    /* the touched bins' logs, four at a time (missing features' lanes
+     * hold stale arguments and are not stored) */
+    vec_logf(ds->arg, ds->arg, d);
+    for (uint32_t j = 0; j < d; j++) {
+        uint32_t b = ds->tb[j];
+        if (b == UINT32_MAX)
+            continue;
+        size_t h = (size_t)k * d + j;
+        ds->tab[h * nb + b] =
+            (float)((double)ds->arg[j] -
+                    ((b == 0 || b == nb - 1) ? ds->log_norm_tail : lw));
+    }
+    sum_lden(ds, k);
 }
 
 void density_reset(density *ds, uint32_t k)

@@ -193,3 +193,66 @@ double vec_sum_log(const double *x, const uint8_t *skip, size_t n)
     double e = (double)exps;
     return e * 6.93147180369123816490e-01 + (e * 1.90821492927058770002e-10 + sum);
 }
+
+typedef float vlf_v4 __attribute__((vector_size(16)));
+typedef int32_t vlf_i4 __attribute__((vector_size(16)));
+
+/* Cephes logf for four positive normal floats. */
+static inline vlf_v4 vlogf4(vlf_v4 x)
+{
+    const vlf_i4 mant = {0x007fffff, 0x007fffff, 0x007fffff, 0x007fffff};
+    const vlf_i4 one = {0x3f800000, 0x3f800000, 0x3f800000, 0x3f800000};
+    const vlf_i4 bias = {127, 127, 127, 127};
+    const vlf_v4 sqrt2 = {1.41421356f, 1.41421356f, 1.41421356f, 1.41421356f};
+    const vlf_v4 v1 = {1.0f, 1.0f, 1.0f, 1.0f};
+    const vlf_v4 vh = {0.5f, 0.5f, 0.5f, 0.5f};
+    vlf_i4 bits = (vlf_i4)x;
+    vlf_v4 m = (vlf_v4)((bits & mant) | one);       /* [1, 2) */
+    vlf_i4 ei = (bits >> 23) - bias;
+    vlf_i4 big = m > sqrt2;                         /* all ones or zero */
+    m = (vlf_v4)(((vlf_i4)(m * vh) & big) | ((vlf_i4)m & ~big));
+    ei = ei - big;                                  /* -(-1) = +1 */
+    vlf_v4 e = __builtin_convertvector(ei, vlf_v4);
+    vlf_v4 f = m - v1;
+    vlf_v4 z = f * f;
+    vlf_v4 y = 7.0376836292e-2f * f - 1.1514610310e-1f;
+    y = y * f + 1.1676998740e-1f;
+    y = y * f - 1.2420140846e-1f;
+    y = y * f + 1.4249322787e-1f;
+    y = y * f - 1.6668057665e-1f;
+    y = y * f + 2.0000714765e-1f;
+    y = y * f - 2.4999993993e-1f;
+    y = y * f + 3.3333331174e-1f;
+    y = y * f * z;
+    y = y + -2.12194440e-4f * e;
+    y = y - 0.5f * z;
+    vlf_v4 r = f + y;
+    return r + 0.693359375f * e;
+}
+
+static inline int vlf_plain(float v)
+{
+    return v >= FLT_MIN && v <= FLT_MAX;
+}
+
+void vec_logf(const float *x, float *y, size_t n)
+{
+    size_t i = 0;
+    for (; i + 4 <= n; i += 4) {
+        vlf_v4 v, r;
+        memcpy(&v, x + i, sizeof v);
+        r = vlogf4(v);
+        for (unsigned l = 0; l < 4; l++)
+            if (!vlf_plain(v[l]))
+                r[l] = logf(v[l]);
+        memcpy(y + i, &r, sizeof r);
+    }
+    if (i < n) {
+        vlf_v4 v = {1.0f, 1.0f, 1.0f, 1.0f}, r;
+        size_t left = n - i;
+        memcpy(&v, x + i, left * sizeof(float));
+        r = vlogf4(v);
+        for (unsigned l = 0; l < left; l++)
+            y[i + l] = vlf_plain(v[l]) ? r[l] : logf(v[l]);
+    }
+}

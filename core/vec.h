@@ -60,4 +60,12 @@ void vec_to_float(const double *in, float *out, size_t n);
  * number (zero, subnormal, infinite, NaN).  0 for no terms. */
 double vec_sum_log(const double *x, const uint8_t *skip, size_t n);
 
+/* y_i = log(x_i) in single precision, four lanes at a time with no libm
+ * call and no division: x = 2^e m with m in [sqrt(1/2), sqrt(2)), log m
+ * from the Cephes logf polynomial (S. L. Moshier, Cephes Math Library
+ * 2.2), log 2 in two parts; within 2 float ulps of the true value for
+ * positive normal x.  Other inputs (zero, negative, subnormal, infinite,
+ * NaN) go to libm's logf one by one.  in and out may be the same array. */
+void vec_logf(const float *x, float *y, size_t n);
+
 #endif
