@@ -41,8 +41,8 @@ struct kmeans {
     uint8_t *cand_used;
     uint32_t cand_head, cand_count;
     /* scratch */
-    float *zf, *ef2, *d2f;
-    uint32_t *obs_j;
+    float *zc, *ec, *d2f; /* observed z, squared errors; distances */
+    size_t *obs_off;      /* observed feature j -> j kp */
     double *s2;
     /* decay memo: dt -> 2^(-dt/H), two entries, round robin */
     double memo_dt[2], memo_f[2];
@@ -101,16 +101,16 @@ kmeans *kmeans_new(const kmeans_params *p, int *err)
     km->cand_score = calloc(cn, sizeof(double));
     km->cand_t = calloc(cn, sizeof(double));
     km->cand_used = calloc(cn, 1);
-    km->zf = calloc(p->dim, sizeof(float));
-    km->ef2 = calloc(p->dim, sizeof(float));
+    km->zc = calloc(p->dim, sizeof(float));
+    km->ec = calloc(p->dim, sizeof(float));
     km->d2f = calloc(km->kp, sizeof(float));
-    km->obs_j = calloc(p->dim, sizeof(uint32_t));
+    km->obs_off = calloc(p->dim, sizeof(size_t));
     km->s2 = calloc(p->dim, sizeof(double));
     if (!km->c || !km->v || !km->s || !km->inv_s || !km->log_s_sum ||
         !km->n || !km->log_n || !km->last || !km->expire || !km->cf ||
         !km->rf || !km->s2f || !km->cand_z || !km->cand_score ||
-        !km->cand_t || !km->cand_used || !km->zf || !km->ef2 || !km->d2f ||
-        !km->obs_j || !km->s2)
+        !km->cand_t || !km->cand_used || !km->zc || !km->ec || !km->d2f ||
+        !km->obs_off || !km->s2)
         goto fail_arrays;
     for (uint32_t cc = 0; cc < p->k; cc++)
         km->log_n[cc] = -INFINITY;
@@ -147,10 +147,10 @@ void kmeans_free(kmeans *km)
     free(km->cand_score);
     free(km->cand_t);
     free(km->cand_used);
-    free(km->zf);
-    free(km->ef2);
+    free(km->zc);
+    free(km->ec);
     free(km->d2f);
-    free(km->obs_j);
+    free(km->obs_off);
     free(km->s2);
     free(km);
 }
@@ -162,7 +162,7 @@ size_t kmeans_bytes(const kmeans *km)
     return sizeof *km + kd * 4 * sizeof(double) +
            (size_t)km->p.k * 6 * sizeof(double) + kp * 3 * sizeof(float) +
            cn * (km->p.dim + 2) * sizeof(double) + cn +
-           (size_t)km->p.dim * (2 * sizeof(float) + sizeof(uint32_t) +
+           (size_t)km->p.dim * (2 * sizeof(float) + sizeof(size_t) +
                                 sizeof(double)) +
            (size_t)km->kp * sizeof(float);
 }
@@ -226,7 +226,7 @@ static void refresh_cluster(kmeans *km, uint32_t k)
         s[j] = sqrt(s2[j]);
         is[j] = 1.0 / s[j];
         km->cf[(size_t)j * kp + k] = (float)c[j];
-        km->rf[(size_t)j * kp + k] = (float)(1.0 / s2[j]);
+        km->rf[(size_t)j * kp + k] = (float)(is[j] * is[j]); /* 1/s^2 */
         km->s2f[(size_t)j * kp + k] = (float)s2[j];
     }
     /* sum_j log s_j = (1/2) sum_j log s_j^2 */
@@ -328,36 +328,61 @@ static inline km_v4f km_load4(const float *p)
     return v;
 }
 
-/* d2f[k] = sum over the observed features j (obs_j, n_obs of them) of
- * (z_j - c_kj)^2 w_kj, eight clusters at a time; with ef2 (squared scaled
- * errors, or NULL) w_kj = 1 / (s_kj^2 + e_j^2), else w_kj = rf_kj. */
-static void assign_dists(kmeans *km, uint32_t n_obs, int with_err)
+/* d2f[k] = sum over the observed features i < n_obs (offset obs_off[i]
+ * = j kp into the mirrors, value zc[i], squared scaled error ec[i]) of
+ * (z_j - c_kj)^2 w_kj, sixteen clusters (four vectors) at a time; with
+ * errors w_kj = 1 / (s_kj^2 + e_j^2), else w_kj = rf_kj.  Each cluster's
+ * sum runs over the features in order, in float. */
+#define KM_STEP(A, V)                                                       \
+    do {                                                                    \
+        km_v4f t_ = zv - km_load4(cf + o + 4 * (V));                        \
+        if (with_err)                                                       \
+            (A) += t_ * t_ / (km_load4(s2f + o + 4 * (V)) + ev);            \
+        else                                                                \
+            (A) += t_ * t_ * km_load4(rf + o + 4 * (V));                    \
+    } while (0)
+
+static inline void assign_dists(kmeans *km, uint32_t n_obs, const int with_err)
 {
     const uint32_t kp = km->kp;
-    const uint32_t *oj = km->obs_j;
-    const float *zf = km->zf, *ef2 = km->ef2;
-    for (uint32_t b = 0; b < kp; b += 8) {
-        km_v4f a0 = {0, 0, 0, 0}, a1 = {0, 0, 0, 0};
+    const size_t *restrict off = km->obs_off;
+    const float *restrict zc = km->zc, *restrict ec = km->ec;
+    const float *restrict cf = km->cf, *restrict rf = km->rf;
+    const float *restrict s2f = km->s2f;
+    float *restrict out = km->d2f;
+    uint32_t b = 0;
+    for (; b + 16 <= kp; b += 16) {
+        km_v4f a0 = {0, 0, 0, 0}, a1 = a0, a2 = a0, a3 = a0;
         for (uint32_t i = 0; i < n_obs; i++) {
-            size_t o = (size_t)oj[i] * kp + b;
-            float zs = zf[oj[i]];
-            km_v4f zv = {zs, zs, zs, zs};
-            km_v4f t0 = zv - km_load4(km->cf + o);
-            km_v4f t1 = zv - km_load4(km->cf + o + 4);
-            if (with_err) {
-                float es = ef2[oj[i]];
-                km_v4f ev = {es, es, es, es};
-                a0 += t0 * t0 / (km_load4(km->s2f + o) + ev);
-                a1 += t1 * t1 / (km_load4(km->s2f + o + 4) + ev);
-            } else {
-                a0 += t0 * t0 * km_load4(km->rf + o);
-                a1 += t1 * t1 * km_load4(km->rf + o + 4);
-            }
+            size_t o = off[i] + b;
+            km_v4f zv = {zc[i], zc[i], zc[i], zc[i]};
+            km_v4f ev = {ec[i], ec[i], ec[i], ec[i]};
+            (void)ev;
+            KM_STEP(a0, 0);
+            KM_STEP(a1, 1);
+            KM_STEP(a2, 2);
+            KM_STEP(a3, 3);
         }
-        memcpy(km->d2f + b, &a0, sizeof a0);
-        memcpy(km->d2f + b + 4, &a1, sizeof a1);
+        memcpy(out + b, &a0, sizeof a0);
+        memcpy(out + b + 4, &a1, sizeof a1);
+        memcpy(out + b + 8, &a2, sizeof a2);
+        memcpy(out + b + 12, &a3, sizeof a3);
+    }
+    for (; b < kp; b += 8) {
+        km_v4f a0 = {0, 0, 0, 0}, a1 = a0;
+        for (uint32_t i = 0; i < n_obs; i++) {
+            size_t o = off[i] + b;
+            km_v4f zv = {zc[i], zc[i], zc[i], zc[i]};
+            km_v4f ev = {ec[i], ec[i], ec[i], ec[i]};
+            (void)ev;
+            KM_STEP(a0, 0);
+            KM_STEP(a1, 1);
+        }
+        memcpy(out + b, &a0, sizeof a0);
+        memcpy(out + b + 4, &a1, sizeof a1);
     }
 }
+#undef KM_STEP
 
 int kmeans_nearest(kmeans *km, const double *z, const double *ez,
                    const uint8_t *miss, uint32_t m, uint32_t *idx,
@@ -367,17 +392,18 @@ int kmeans_nearest(kmeans *km, const double *z, const double *ez,
         return CORE_EAGAIN;
     if (m == 0 || !z || !idx || !d2)
         return CORE_EINVAL;
-    uint32_t d = km->p.dim, k = km->p.k;
+    const uint32_t d = km->p.dim, k = km->p.k, kp = km->kp;
     uint32_t obs = 0;
     int any_err = 0;
     for (uint32_t j = 0; j < d; j++) {
-        int mj = (miss && miss[j]) || !isfinite(z[j]);
-        km->zf[j] = mj ? 0.0f : (float)z[j];
-        km->obs_j[obs] = j;
-        obs += !mj;
-        double e = (ez && !mj && isfinite(ez[j])) ? ez[j] : 0.0;
-        km->ef2[j] = (float)(e * e);
+        if ((miss && miss[j]) || !isfinite(z[j]))
+            continue;
+        double e = (ez && isfinite(ez[j])) ? ez[j] : 0.0;
+        km->zc[obs] = (float)z[j];
+        km->ec[obs] = (float)(e * e);
+        km->obs_off[obs] = (size_t)j * kp;
         any_err |= e != 0;
+        obs++;
     }
     if (m > k)
         m = k;
@@ -394,12 +420,9 @@ int kmeans_nearest(kmeans *km, const double *z, const double *ez,
         assign_dists(km, obs, 0);
     /* Partial insertion sort: the m smallest, ties to the lower index. */
     const float *df = km->d2f;
-    uint32_t got = 0;
-    for (uint32_t cc = 0; cc < k; cc++) {
+    for (uint32_t cc = 0; cc < m; cc++) {
         double v = df[cc];
-        if (got == m && !(v < d2[m - 1]))
-            continue;
-        uint32_t pos = got < m ? got++ : m - 1;
+        uint32_t pos = cc;
         while (pos > 0 && v < d2[pos - 1]) {
             d2[pos] = d2[pos - 1];
             idx[pos] = idx[pos - 1];
@@ -407,6 +430,21 @@ int kmeans_nearest(kmeans *km, const double *z, const double *ez,
         }
         d2[pos] = v;
         idx[pos] = cc;
+    }
+    double worst = d2[m - 1];
+    for (uint32_t cc = m; cc < k; cc++) {
+        double v = df[cc];
+        if (!(v < worst))
+            continue;
+        uint32_t pos = m - 1;
+        while (pos > 0 && v < d2[pos - 1]) {
+            d2[pos] = d2[pos - 1];
+            idx[pos] = idx[pos - 1];
+            pos--;
+        }
+        d2[pos] = v;
+        idx[pos] = cc;
+        worst = d2[m - 1];
     }
     double scale = (double)d / (double)obs;
     for (uint32_t i = 0; i < m; i++)
