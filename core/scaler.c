@@ -6,6 +6,11 @@
  *   W' = f W + 1;  delta = x - mean;  mean' = mean + delta / W';
  *   M2' = f M2 + delta (x - mean')
  * (West 1979, with weight 1 for the new value and f for the old ones).
+ * The division by W' is a multiply by 1/W', and the features usually
+ * share W' (same history of observed values), so one reciprocal serves
+ * every feature while W' is bit-identical; 1/sd is computed from 1/W by
+ * the same function on observe and on load, so a restored scaler
+ * continues bit for bit.
  */
 #include "scaler.h"
 
@@ -109,9 +114,19 @@ static inline double sd_of(const scaler *s, uint32_t j)
     return sd > s->p.sd_floor ? sd : s->p.sd_floor;
 }
 
+/* 1 / max(sqrt(m2 / w), floor) with m2 / w taken as m2 * inv_w, inv_w =
+ * 1 / w (or 0 for w <= 0). */
+static inline double inv_sd_from(const scaler *s, double m2, double inv_w)
+{
+    double v = m2 * inv_w;
+    double sd = v > 0 ? sqrt(v) : 0;
+    return 1.0 / (sd > s->p.sd_floor ? sd : s->p.sd_floor);
+}
+
 void scaler_observe(scaler *s, const double *x, const uint8_t *missing,
                     double t)
 {
+    double last_w1 = NAN, inv_w1 = 0;
     double f = 1.0;
     if (isfinite(t)) {
         if (!s->started) {
@@ -126,8 +141,12 @@ void scaler_observe(scaler *s, const double *x, const uint8_t *missing,
     for (uint32_t j = 0; j < s->p.dim; j++) {
         s->w[j] *= f;
         s->m2[j] *= f;
-        if (is_missing(x, missing, j))
+        if (is_missing(x, missing, j)) {
+            /* keep 1/sd the function of (w, m2) that a load recomputes */
+            if (f != 1.0 && s->w[j] > 0)
+                s->inv_sd[j] = inv_sd_from(s, s->m2[j], 1.0 / s->w[j]);
             continue;
+        }
         double v = x[j];
         if (s->p.robust && s->n[j] >= s->p.robust_min_n) {
             double lim = s->p.z_clip / s->inv_sd[j];
@@ -137,14 +156,18 @@ void scaler_observe(scaler *s, const double *x, const uint8_t *missing,
                 v = s->mean[j] - lim;
         }
         double w1 = s->w[j] + 1.0;
+        if (!(w1 == last_w1)) {
+            last_w1 = w1;
+            inv_w1 = 1.0 / w1;
+        }
         double delta = v - s->mean[j];
-        s->mean[j] += delta / w1;
+        s->mean[j] += delta * inv_w1;
         s->m2[j] += delta * (v - s->mean[j]);
         if (s->m2[j] < 0)
             s->m2[j] = 0;
         s->w[j] = w1;
         s->n[j]++;
-        s->inv_sd[j] = 1.0 / sd_of(s, j);
+        s->inv_sd[j] = inv_sd_from(s, s->m2[j], inv_w1);
     }
 }
 
@@ -245,7 +268,8 @@ int scaler_load(scaler *s, snap_reader *r)
     for (uint32_t j = 0; j < dim; j++)
         s->n[j] = snap_get_u64(r);
     for (uint32_t j = 0; j < dim; j++)
-        s->inv_sd[j] = 1.0 / sd_of(s, j);
+        s->inv_sd[j] = inv_sd_from(s, s->m2[j],
+                                   s->w[j] > 0 ? 1.0 / s->w[j] : 0.0);
     return r->err;
 }
 
