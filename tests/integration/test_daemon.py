@@ -436,3 +436,47 @@ def committed_all(broker, group, topic, ends):
     got = ku.committed_offsets(broker, group, topic)
     assert got == ends, f"committed {got}, end offsets {ends}"
     return True
+
+
+@pytest.mark.parametrize("size,reason", [(1_020_000, "bad_json"), (3 * 1024 * 1024, "too_large")],
+                         ids=["bad_json-1020000", "too_large-3MiB"])
+def test_poison_larger_than_the_producer_limit(broker, new_topic, oddsky, tmp_path, size, reason):
+    """A refused message bigger than the daemon's producer accepts
+    (librdkafka's default message.max.bytes is 1,000,000, source: librdkafka
+    CONFIGURATION.md; the broker's default max.message.bytes 1048588 and
+    input.max_message_bytes 1048576 let a 1,020,000-byte message in, so
+    with every default a bad 1,020,000-byte JSON text is such a message).
+    One poison message must not stop the daemon: the good packets after it
+    are scored, it is counted and dead-lettered with its reason (its bytes
+    may not fit), and the daemon keeps running."""
+    in_t = new_topic(1, prefix="oversize-in", config=BIG_TOPIC)
+    out_t, dlq_t = new_topic(1, prefix="oversize-out"), new_topic(1, prefix="oversize-dlq")
+    du.simulate_to_topic(broker, in_t, 100, seed=61)
+    poison = b"{" + b" " * (size - 1)  # unterminated object
+    ku.produce(broker, in_t, [poison], partition=0, extra_config=BIG_PRODUCER)
+    du.simulate_to_topic(broker, in_t, 100, seed=62)
+    port = ku.free_port()
+    group = ku.unique_name("g")
+    cfg = du.make_config(broker, [in_t], out_t, dlq_t, group, tmp_path / "state",
+                         status_port=port)
+    proc = oddsky(cfg)
+    doc = du.wait_status(proc, port, lambda d: d["counts"]["packets"] >= 201, 60,
+                         "201 packets consumed")
+    time.sleep(3)  # a few housekeeping ticks, where a fatal error stops it
+    if proc.poll() is not None:
+        log = [ln for ln in ku.oddsky_log(proc).splitlines()
+               if "refused" in ln or "fatal" in ln or "stopped" in ln or "ERROR" in ln]
+        pytest.fail(f"DAEMON BUG (integ-bugs.md #4): one {size}-byte poison message "
+                    f"({reason}) stopped the daemon, exit status {proc.returncode}; "
+                    f"committed {ku.committed_offsets(broker, group, in_t)} (a restart "
+                    f"meets the same message); log:\n" + "\n".join(log), pytrace=False)
+    doc = du.status(port)
+    assert doc["counts"]["dead_letters"][reason] == 1
+    results = du.read_topic(broker, out_t, n=None)
+    assert len(results) == 200
+    dead = du.read_topic(broker, dlq_t, n=None)
+    rc, _, killed = du.stop(proc)
+    assert (rc, killed) == (0, False), du.log_tail(proc)
+    assert len(dead) == 1
+    hdr = du.headers_dict(dead[0].headers)
+    assert hdr["oddsky.reason"] == reason and hdr["oddsky.input.offset"] == "100"

@@ -65,6 +65,10 @@ def test_stop_mid_stream_and_restart(broker, new_topic, oddsky, tmp_path, sig):
     cfg = du.make_config(broker, [in_t], out_t, dlq_t, group, tmp_path / "state",
                          status_port=port, checkpoint_interval_s=2)
 
+    # An idempotent producer first, so the broker's transaction coordinator
+    # (which hands out producer ids, the daemon's included) is loaded before
+    # the clock starts: on a fresh broker that takes seconds.
+    ku.produce(broker, ku.create_topic(broker, ku.unique_name("warm"), 1), [b"warm-up"])
     t0 = time.monotonic()
     first = oddsky(cfg)
     # Assigned before the input starts (the first group of a session waits
