@@ -448,9 +448,15 @@ static uint32_t build_mask(const model *m, const model_input *in, uint8_t *miss)
     return n_missing;
 }
 
-static void flag_decision(model *m, double dn, double sn, model_result *out)
+/* Novelty, tail probability, threshold and flag from the two scores,
+ * through calib_assess (one asinh, one threshold search per calibrator):
+ * each calibrator is moved to t, judges the score against the
+ * distribution before it, then learns it when learn is set. */
+static void flag_decision(model *m, double dn, double sn, double t, int learn,
+                          model_result *out)
 {
     double novelty;
+    calib_verdict v;
     switch (m->p.score) {
     case MODEL_SCORE_SPACE:
         novelty = sn;
@@ -458,8 +464,10 @@ static void flag_decision(model *m, double dn, double sn, model_result *out)
     case MODEL_SCORE_COMBINED: {
         /* Fisher's method without the chi-square step: the sum of
          * -log tail probabilities, itself calibrated below. */
-        double td = calib_tail_prob(m->cal_d, dn);
-        double ts = calib_tail_prob(m->cal_s, sn);
+        calib_assess(m->cal_d, dn, t, learn, &v);
+        double td = v.tail_prob;
+        calib_assess(m->cal_s, sn, t, learn, &v);
+        double ts = v.tail_prob;
         novelty = -log(td > 1e-300 ? td : 1e-300) - log(ts > 1e-300 ? ts : 1e-300);
         break;
     }
@@ -467,23 +475,10 @@ static void flag_decision(model *m, double dn, double sn, model_result *out)
         novelty = dn;
     }
     out->novelty = novelty;
-    out->tail_prob = calib_tail_prob(m->cal, novelty);
-    out->threshold = calib_threshold(m->cal);
-    /* calib_should_flag() without recomputing either figure: alpha
-     * policy, tail_prob <= alpha; budget policy, novelty >= threshold. */
-    const calib_params *cp = calib_get_params(m->cal);
-    out->flag = isfinite(novelty) &&
-                (cp->policy == CALIB_POLICY_ALPHA ? out->tail_prob <= cp->alpha
-                                                  : novelty >= out->threshold);
-}
-
-static void learn_scores(model *m, const model_result *out, double t)
-{
-    calib_observe(m->cal, out->novelty, t);
-    if (m->cal_d) {
-        calib_observe(m->cal_d, out->density_novelty, t);
-        calib_observe(m->cal_s, out->space_novelty, t);
-    }
+    calib_assess(m->cal, novelty, t, learn, &v);
+    out->tail_prob = v.tail_prob;
+    out->threshold = v.threshold;
+    out->flag = isfinite(novelty) && v.flag;
 }
 
 /* Score z (already standardised into m->z, m->ez, m->miss) at time t. */
@@ -509,7 +504,7 @@ static void score_vector(model *m, double t, int learn, model_result *out)
     } else {
         out->space_novelty = NAN;
     }
-    flag_decision(m, out->density_novelty, out->space_novelty, out);
+    flag_decision(m, out->density_novelty, out->space_novelty, t, learn, out);
 
     /* Drivers: the largest |z - c| / s in the assigned cluster. */
     kmeans_cluster_view v;
@@ -538,7 +533,6 @@ static void score_vector(model *m, double t, int learn, model_result *out)
         return;
     density_update(m->ds, m->km, best, m->z, m->miss, t);
     kmeans_update(m->km, best, m->z, m->miss, t);
-    learn_scores(m, out, t);
     if (out->tail_prob <= MODEL_CANDIDATE_TAIL)
         kmeans_offer(m->km, m->z, m->miss, out->density_novelty, t);
     uint32_t nr = kmeans_retire(m->km, t, m->reborn, m->p.k);
@@ -586,9 +580,8 @@ static void seed_from_warm(model *m)
             sketch_advance(m->sk, t);
             tmp.space_novelty = sketch_observe(m->sk, m->z, m->miss, 1);
         }
-        flag_decision(m, tmp.density_novelty, tmp.space_novelty, &tmp);
+        flag_decision(m, tmp.density_novelty, tmp.space_novelty, t, 1, &tmp);
         density_update(m->ds, m->km, k, m->z, m->miss, t);
-        learn_scores(m, &tmp, t);
         reservoir_add(m->res, zi, t);
     }
 }
