@@ -26,8 +26,8 @@
 static void help(FILE *out)
 {
     fprintf(out,
-            "usage: oddsky demo [--port N] [--rate N] [--seed N] [--rare-rate F]\n"
-            "                   [--set key=value]...\n"
+            "usage: oddsky demo [--port N] [--rate N] [--count N] [--seed N]\n"
+            "                   [--rare-rate F] [--set key=value]...\n"
             "\n"
             "Start an in-memory Kafka cluster (librdkafka's mock cluster: for\n"
             "trying oddsky only, nothing is kept), feed it simulated alert packets\n"
@@ -36,6 +36,7 @@ static void help(FILE *out)
             "\n"
             "  --port N        status page port (default 8787; 0 = any free port)\n"
             "  --rate N        simulated packets per second (default 2000)\n"
+            "  --count N       stop feeding after N packets (default 0 = never)\n"
             "  --seed N        simulator seed (default 1)\n"
             "  --rare-rate F   share of each rare population (default 0.002)\n"
             "  --set key=value any daemon option (see oddsky check-config --defaults)\n"
@@ -71,7 +72,7 @@ int cmd_demo(int argc, char **argv)
     size_t n_sets = 0;
     long port = 8787;
     double rate = 2000, rare = 0.002;
-    unsigned long long seed = 1;
+    unsigned long long seed = 1, count = 0;
     for (int i = 1; i < argc; i++) {
         const char *a = argv[i];
         const char *v = i + 1 < argc ? argv[i + 1] : NULL;
@@ -98,6 +99,13 @@ int cmd_demo(int argc, char **argv)
             i++;
             if (*end || !(rare >= 0 && rare <= 0.1)) {
                 fprintf(stderr, "oddsky demo: --rare-rate must be between 0 and 0.1\n");
+                return EX_USAGE;
+            }
+        } else if (!strcmp(a, "--count") && v) {
+            count = strtoull(v, &end, 10);
+            i++;
+            if (*end) {
+                fprintf(stderr, "oddsky demo: --count must be an integer\n");
                 return EX_USAGE;
             }
         } else if (!strcmp(a, "--seed") && v) {
@@ -162,7 +170,7 @@ int cmd_demo(int argc, char **argv)
         return EX_CONFIG;
     }
     free(errs);
-    if (embedded_feed_start(e, DEMO_IN, rate, seed, rare, err, sizeof err) != 0) {
+    if (embedded_feed_start(e, DEMO_IN, rate, count, seed, rare, err, sizeof err) != 0) {
         fprintf(stderr, "oddsky demo: %s\n", err);
         config_free(&cfg);
         embedded_stop(e);

@@ -24,6 +24,7 @@ struct embedded {
     atomic_uint_fast64_t fed;
     char topic[256];
     double rate;
+    uint64_t count;
     sim *sim;
     rd_kafka_t *producer;
     uint8_t sync[16];
@@ -92,7 +93,7 @@ static void *feed(void *arg)
     sim_packet p;
     double t0 = now_s();
     uint64_t n = 0;
-    while (!atomic_load(&e->stop)) {
+    while (!atomic_load(&e->stop) && (e->count == 0 || n < e->count)) {
         if (e->rate > 0) {
             double due = t0 + (double)n / e->rate;
             double wait = due - now_s();
@@ -128,8 +129,8 @@ static void *feed(void *arg)
 }
 
 int embedded_feed_start(embedded *e, const char *topic, double rate_per_s,
-                        uint64_t seed, double rare_rate, char *err,
-                        size_t err_len)
+                        uint64_t count, uint64_t seed, double rare_rate,
+                        char *err, size_t err_len)
 {
     sim_params sp;
     sim_params_default(&sp);
@@ -156,6 +157,7 @@ int embedded_feed_start(embedded *e, const char *topic, double rate_per_s,
     }
     snprintf(e->topic, sizeof e->topic, "%s", topic);
     e->rate = rate_per_s;
+    e->count = count;
     if (pthread_create(&e->feeder, NULL, feed, e) != 0) {
         snprintf(err, err_len, "demo feeder: cannot start a thread");
         return -1;

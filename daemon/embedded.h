@@ -32,11 +32,12 @@ embedded *embedded_start(int n_brokers, const embedded_topic *topics,
 const char *embedded_bootstraps(const embedded *e);
 
 /* Start feeding simulated packets to topic at rate_per_s (0 = as fast as
- * the producer takes them) with the given seed and rare-population rate.
- * Returns 0 or -1 with err filled. */
+ * the producer takes them) with the given seed and rare-population rate,
+ * stopping after count packets (0 = until embedded_stop).  Returns 0 or -1
+ * with err filled. */
 int embedded_feed_start(embedded *e, const char *topic, double rate_per_s,
-                        uint64_t seed, double rare_rate, char *err,
-                        size_t err_len);
+                        uint64_t count, uint64_t seed, double rare_rate,
+                        char *err, size_t err_len);
 
 /* Packets the feeder has produced so far. */
 uint64_t embedded_fed(const embedded *e);
