@@ -164,11 +164,17 @@ static double fen_prefix(const calib *c, uint32_t pos)
 }
 
 /* Smallest pos with prefix(pos) >= target (past n when none), and
- * prefix(pos - 1) in *below.  The tree size is a power of two, so the
- * descent needs no bounds check, and the step is written without a
- * data-dependent branch. */
+ * prefix(pos - 1) in *below.  The tree size is a power of two, so once
+ * the root covers the target the descent needs no bounds check, and the
+ * step is written without a data-dependent branch.  A root below the
+ * target (rounding against c->total, or a snapshot whose total and tree
+ * disagree) would step past the tree: answer "none" before that. */
 static uint32_t fen_search(const calib *c, double target, double *below)
 {
+    if (c->fen[c->fn] < target) {
+        *below = c->fen[c->fn];
+        return c->fn + 1;
+    }
     uint32_t pos = 0;
     double acc = 0;
     for (uint32_t step = c->fn; step; step >>= 1) {
