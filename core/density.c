@@ -33,7 +33,7 @@
 struct density {
     density_params p;
     uint32_t nb;
-    double width, inv_width, tail_q, log_norm_tail;
+    double width, inv_width, log_width, tail_q, log_norm_tail;
     double *phi;       /* nb: normal mass per bin */
     double *count;     /* k x dim x nb */
     double *total;     /* k x dim */
@@ -86,8 +86,9 @@ static void build_cluster(density *ds, uint32_t k)
 {
     uint32_t d = ds->p.dim, nb = ds->nb;
     double g = decay_unit(&ds->clk), P = ds->p.pseudo;
-    double lw = log(ds->width);
+    double lw = ds->log_width;
     float *arg = ds->arg;
+    const double inv_g = 1.0 / g;
     for (uint32_t j = 0; j < d; j++) {
         size_t h = (size_t)k * d + j;
         const double *c = ds->count + h * nb;
@@ -95,7 +96,7 @@ static void build_cluster(density *ds, uint32_t k)
         double T = ds->total[h] / g;
         ds->lden[h] = log(T + P);
         for (uint32_t b = 0; b < nb; b++)
-            arg[b] = (float)(c[b] / g + P * ds->phi[b]);
+            arg[b] = (float)(c[b] * inv_g + P * ds->phi[b]);
         vec_logf(arg, arg, nb);
         for (uint32_t b = 0; b < nb; b++)
             tab[b] = (float)((double)arg[b] -
@@ -133,6 +134,7 @@ density *density_new(const density_params *p, int *err)
         goto fail_arrays;
     ds->width = 2 * p->range / p->bins;
     ds->inv_width = 1.0 / ds->width;
+    ds->log_width = log(ds->width);
     ds->tail_q = 0.5 * erfc(p->range / M_SQRT2);
     ds->log_norm_tail = log(ds->tail_q) + 0.5 * log(2 * M_PI);
     ds->phi[0] = ds->tail_q;
@@ -309,7 +311,7 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
     int rebuild = g > ds->built_g[k] * (1.0 + ds->p.refresh_tol);
     kmeans_cluster_view v;
     kmeans_cluster(km, k, &v);
-    double lw = log(ds->width);
+    double lw = ds->log_width, inv_g = 1.0 / g;
     /* the last total whose log was taken, and that log */
     double last_total = NAN, last_lden = 0;
     uint32_t nt = 0;
@@ -327,7 +329,7 @@ void density_update(density *ds, const kmeans *km, uint32_t k,
         if (rebuild)
             continue;
         ds->tb[j] = b;
-        ds->arg[j] = (float)(c[b] / g + P * ds->phi[b]);
+        ds->arg[j] = (float)(c[b] * inv_g + P * ds->phi[b]); /* float: 1/g is exact enough */
         nt++;
         /* log(total / g + P) is a function of total: equal totals (the
          * usual case, see above) share one log */
