@@ -468,8 +468,10 @@ def test_poison_larger_than_the_producer_limit(broker, new_topic, oddsky, tmp_pa
                if "refused" in ln or "fatal" in ln or "stopped" in ln or "ERROR" in ln]
         pytest.fail(f"DAEMON BUG (integ-bugs.md #4): one {size}-byte poison message "
                     f"({reason}) stopped the daemon, exit status {proc.returncode}; "
-                    f"committed {ku.committed_offsets(broker, group, in_t)} (a restart "
-                    f"meets the same message); log:\n" + "\n".join(log), pytrace=False)
+                    f"committed {ku.committed_offsets(broker, group, in_t)} (past the "
+                    f"poison at offset 100), dead-letter topic holds "
+                    f"{sum(ku.end_offsets(broker, dlq_t).values())}; log:\n"
+                    + "\n".join(log), pytrace=False)
     doc = du.status(port)
     assert doc["counts"]["dead_letters"][reason] == 1
     results = du.read_topic(broker, out_t, n=None)
