@@ -3,11 +3,12 @@
  * chains, decaying count-min counters.
  *
  * Design choices, in the order a vector meets them:
- * - Projection: the sparse matrix is stored as one index list per projected
- *   axis, padded to the longest list with zero entries so every list has
- *   the same trip count, with the entries already divided by that axis'
- *   fitted bin width: one pass of about d*P/3 multiply-adds yields u_p,
- *   the vector's coordinate in level-1 bin widths.
+ * - Projection: the sparse matrix is kept as one index list per projected
+ *   axis (saved state) and expanded into a dense feature-major copy with
+ *   the entries already divided by that axis' fitted bin width: one pass
+ *   of d*P/2 two-lane multiply-adds (the zeros add nothing, so the sums
+ *   equal the sparse ones bit for bit) yields u_p, the vector's
+ *   coordinate in level-1 bin widths.
  * - Bins: in xStream the k-th split of axis f has bin width delta_f/2^(k-1)
  *   and shift s_f/2^(k-1), so its bin is floor(u_f * 2^(k-1) + s_f/delta_f).
  *   u_f is converted once to 32.32 fixed point; each (chain, level) keeps
@@ -32,7 +33,7 @@
  *
  * Invariants: counters hold counts in units of the clock's g (decay.h);
  * every array lives in one block allocated by sketch_new, never resized;
- * the per-level table and the padded projection are derived from the
+ * the per-level table and the dense projection are derived from the
  * saved state (axis, shift, widths, sparse lists) by chains_derive and
  * proj_derive.
  */
@@ -74,11 +75,13 @@ struct sketch {
     uint32_t *proj_start; /* P + 1 */
     uint16_t *proj_idx;   /* feature index per entry */
     int8_t *proj_sign;    /* +1 / -1 per entry */
-    uint32_t pad_k;       /* longest axis list; every list padded to it */
-    uint16_t *pad_idx;    /* P * pad_k feature indices (padding: 0) */
-    double *pad_val;      /* P * pad_k: sign sqrt(3) / width[p] (padding:
-                             0), so the projection loops have one fixed
-                             trip count and no mispredicted exits */
+    uint32_t pp;          /* P rounded up to even */
+    double *dense;        /* d * pp, feature-major: entry (j, p) is
+                             sign sqrt(3) / width[p], or 0 where the
+                             sparse matrix has none (and for p >= P), so
+                             the projection runs two axes per SSE2 vector
+                             with no index loads; adding the zeros leaves
+                             every sum bit-identical to the sparse one */
     double *width;        /* P: fitted level-1 bin width, z units */
 
     /* chains */
@@ -185,23 +188,12 @@ static void chains_derive(sketch *sk)
 /* Projection entries scaled by the fitted widths. */
 static void proj_derive(sketch *sk)
 {
-    const uint32_t P = sk->p.proj_dims;
-    uint32_t K = 0;
-    for (uint32_t p = 0; p < P; p++) {
-        uint32_t n = sk->proj_start[p + 1] - sk->proj_start[p];
-        K = n > K ? n : K;
-    }
-    sk->pad_k = K;
-    for (uint32_t p = 0; p < P; p++) {
-        uint32_t from = sk->proj_start[p], n = sk->proj_start[p + 1] - from;
-        for (uint32_t k = 0; k < K; k++) {
-            sk->pad_idx[p * K + k] = k < n ? sk->proj_idx[from + k] : 0;
-            sk->pad_val[p * K + k] =
-                k < n ? (double)sk->proj_sign[from + k] * SKETCH_SQRT3 /
-                            sk->width[p]
-                      : 0.0;
-        }
-    }
+    const uint32_t P = sk->p.proj_dims, pp = sk->pp, d = sk->p.dim;
+    memset(sk->dense, 0, (size_t)d * pp * sizeof(double));
+    for (uint32_t p = 0; p < P; p++)
+        for (uint32_t k = sk->proj_start[p]; k < sk->proj_start[p + 1]; k++)
+            sk->dense[(size_t)sk->proj_idx[k] * pp + p] =
+                (double)sk->proj_sign[k] * SKETCH_SQRT3 / sk->width[p];
 }
 
 sketch *sketch_new(const sketch_params *p, int *err)
@@ -226,8 +218,7 @@ sketch *sketch_new(const sketch_params *p, int *err)
     size_t o_hbase = carve(&off, M * R * sizeof(uint64_t), 8);
     size_t o_width = carve(&off, P * sizeof(double), 8);
     size_t o_levw = carve(&off, L * sizeof(double), 8);
-    size_t o_pval = carve(&off, P * d * sizeof(double), 8);
-    size_t o_padidx = carve(&off, P * d * sizeof(uint16_t), 2);
+    size_t o_dense = carve(&off, ((P + 1) & ~(size_t)1) * d * sizeof(double), 16);
     size_t o_shift = carve(&off, M * P * sizeof(double), 8);
     size_t o_best = carve(&off, M * sizeof(double), 8);
     size_t o_zd = carve(&off, d * sizeof(double), 8);
@@ -249,8 +240,8 @@ sketch *sketch_new(const sketch_params *p, int *err)
     sk->hbase = (uint64_t *)(base + o_hbase);
     sk->width = (double *)(base + o_width);
     sk->level_w = (double *)(base + o_levw);
-    sk->pad_val = (double *)(base + o_pval);
-    sk->pad_idx = (uint16_t *)(base + o_padidx);
+    sk->dense = (double *)(base + o_dense);
+    sk->pp = (uint32_t)((P + 1) & ~(size_t)1);
     sk->shift = (double *)(base + o_shift);
     sk->best = (double *)(base + o_best);
     sk->zd = (double *)(base + o_zd);
@@ -340,20 +331,49 @@ static void load_z(sketch *sk, const double *z, const uint8_t *mask)
 
 /* Projected coordinates of the loaded z in level-1 bin widths, clamped to
  * +-u_clamp, into y. */
+typedef double sk_v2d __attribute__((vector_size(16)));
+
 static void project(const sketch *sk, double *y)
 {
-    const uint32_t P = sk->p.proj_dims;
+    const uint32_t P = sk->p.proj_dims, d = sk->p.dim, nv = sk->pp / 2;
     const double *zd = sk->zd;
-    const uint32_t K = sk->pad_k;
-    const uint16_t *ix = sk->pad_idx;
-    const double *val = sk->pad_val;
-    for (uint32_t p = 0; p < P; p++, ix += K, val += K) {
-        double acc = 0.0;
-        for (uint32_t k = 0; k < K; k++)
-            acc += val[k] * zd[ix[k]];
-        acc = acc > sk->u_clamp ? sk->u_clamp : acc;
-        acc = acc < -sk->u_clamp ? -sk->u_clamp : acc;
-        y[p] = acc;
+    const double *row = sk->dense;
+    sk_v2d acc[SKETCH_MAX_PROJ / 2];
+    for (uint32_t q = 0; q < nv; q++)
+        acc[q] = (sk_v2d){0.0, 0.0};
+    if (nv == 8) {
+        /* the default P = 16, accumulators in registers */
+        sk_v2d a0 = acc[0], a1 = a0, a2 = a0, a3 = a0, a4 = a0, a5 = a0,
+               a6 = a0, a7 = a0;
+        for (uint32_t j = 0; j < d; j++, row += 16) {
+            sk_v2d zv = {zd[j], zd[j]}, r[8];
+            memcpy(r, row, sizeof r);
+            a0 += r[0] * zv;
+            a1 += r[1] * zv;
+            a2 += r[2] * zv;
+            a3 += r[3] * zv;
+            a4 += r[4] * zv;
+            a5 += r[5] * zv;
+            a6 += r[6] * zv;
+            a7 += r[7] * zv;
+        }
+        acc[0] = a0, acc[1] = a1, acc[2] = a2, acc[3] = a3;
+        acc[4] = a4, acc[5] = a5, acc[6] = a6, acc[7] = a7;
+    } else {
+        for (uint32_t j = 0; j < d; j++, row += 2 * nv) {
+            sk_v2d zv = {zd[j], zd[j]};
+            for (uint32_t q = 0; q < nv; q++) {
+                sk_v2d r;
+                memcpy(&r, row + 2 * q, sizeof r);
+                acc[q] += r * zv;
+            }
+        }
+    }
+    for (uint32_t p = 0; p < P; p++) {
+        double v = acc[p / 2][p & 1];
+        v = v > sk->u_clamp ? sk->u_clamp : v;
+        v = v < -sk->u_clamp ? -sk->u_clamp : v;
+        y[p] = v;
     }
 }
 
