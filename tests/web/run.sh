@@ -47,3 +47,4 @@ fi
 py="$top/build/venv/bin/python3"
 [ -x "$py" ] || py=python3
 "$py" tests/web/check_page.py --url "$url/" --served "$tmp/served" --out "$out"
+BUILD="$BUILD" tests/web/run_daemon.sh
