@@ -262,3 +262,13 @@ def bare_avro(packet):
     buf = io.BytesIO()
     fastavro.schemaless_writer(buf, _parsed_schema(), packet)
     return buf.getvalue()
+
+
+def inspect_checkpoint(state_dir, timeout_s=60):
+    """`oddsky inspect --json STATE_DIR` as a dict."""
+    cmd = [ku.oddsky_binary(), "inspect", "--json", str(state_dir)]
+    p = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                       timeout=timeout_s)
+    if p.returncode != 0:
+        raise RuntimeError(f"{' '.join(cmd)} exited {p.returncode}:\n{p.stderr}")
+    return json.loads(p.stdout)

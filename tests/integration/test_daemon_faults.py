@@ -154,7 +154,16 @@ def test_stop_mid_stream_and_restart(broker, new_topic, oddsky, tmp_path, sig):
     assert doc["counts"]["learned"] + doc["counts"]["rescored"] == doc["counts"]["packets"]
     assert du.dead_letter_total(doc) == 0
     # Everything is committed at the end.
-    assert ku.committed_offsets(broker, group, in_t) == ku.end_offsets(broker, in_t)
+    ends = ku.end_offsets(broker, in_t)
+    assert ku.committed_offsets(broker, group, in_t) == ends
+    # The checkpoint the second run left on shutdown says the same: every
+    # packet learned once, the ledger at the last offset of each partition.
+    ck = du.inspect_checkpoint(tmp_path / "state")
+    print(f"[{name}] checkpoint: model.learned {ck['model']['learned']}, ledger "
+          f"{ {e['partition']: e['learned'] for e in ck['ledger']} }")
+    assert ck["model"]["learned"] == N
+    assert {e["partition"]: e["learned"] for e in ck["ledger"] if e["topic"] == in_t} == \
+        {p: e - 1 for p, e in ends.items()}
     if sig == signal.SIGTERM:
         # After a clean drain with committed offsets nothing is read twice.
         assert not dups, f"after SIGTERM: {du.summarize_dups(dups)}"
