@@ -11,11 +11,12 @@
  *
  * It also reports what `oddsky simulate --history N` gives with the
  * simulator's default 30-day history horizon: the mean number of history
- * points per packet over the first --n packets (sim_mean_history), and
+ * points per packet over the first --stat-n packets (default 1000000, as
+ * many as the end-to-end run preloads; sim_mean_history), and
  * over those that have any history at all.
  *
- *   decode_bench [--n N] [--min-hist H] [--history-days D] [--reps R]
- *                [--featmap FILE] [--schema-dir DIR]
+ *   decode_bench [--n N] [--stat-n N] [--min-hist H] [--history-days D]
+ *                [--reps R] [--featmap FILE] [--schema-dir DIR]
  *
  * --schema-dir must hold 1.avsc (the demo packet schema) for the schema-id
  * run.  Prints key=value pairs on stdout.  Not a test: figures only.
@@ -109,7 +110,7 @@ static double time_set(decoder *d, const buf_set *b, int reps, double *hist_mean
 
 int main(int argc, char **argv)
 {
-    size_t n = 200000;
+    size_t n = 200000, stat_n = 1000000;
     unsigned min_hist = 30;
     double history_days = 365.0;
     int reps = 3;
@@ -118,6 +119,8 @@ int main(int argc, char **argv)
     for (int i = 1; i < argc; i++) {
         if (!strcmp(argv[i], "--n") && i + 1 < argc)
             n = strtoull(argv[++i], NULL, 10);
+        else if (!strcmp(argv[i], "--stat-n") && i + 1 < argc)
+            stat_n = strtoull(argv[++i], NULL, 10);
         else if (!strcmp(argv[i], "--min-hist") && i + 1 < argc)
             min_hist = (unsigned)atoi(argv[++i]);
         else if (!strcmp(argv[i], "--history-days") && i + 1 < argc)
@@ -129,12 +132,12 @@ int main(int argc, char **argv)
         else if (!strcmp(argv[i], "--schema-dir") && i + 1 < argc)
             schema_dir = argv[++i];
         else {
-            fprintf(stderr, "usage: decode_bench [--n N] [--min-hist H] [--history-days D] "
+            fprintf(stderr, "usage: decode_bench [--n N] [--stat-n N] [--min-hist H] [--history-days D] "
                             "[--reps R] [--featmap FILE] [--schema-dir DIR]\n");
             return 64;
         }
     }
-    if (n == 0 || min_hist < 1 || min_hist > SIM_HISTORY_CAP || reps < 1) {
+    if (n == 0 || stat_n == 0 || min_hist < 1 || min_hist > SIM_HISTORY_CAP || reps < 1) {
         fprintf(stderr, "decode_bench: bad arguments\n");
         return 64;
     }
@@ -151,7 +154,7 @@ int main(int argc, char **argv)
         return 70;
     }
     uint64_t h_all = 0, h_with = 0, n_with = 0, n_full = 0;
-    for (size_t i = 0; i < n; i++) {
+    for (size_t i = 0; i < stat_n; i++) {
         sim_next(s, &pk);
         h_all += pk.n_hist;
         if (pk.n_hist) {
@@ -163,9 +166,10 @@ int main(int argc, char **argv)
     sim_free(s);
     printf("sim_default_history_max=%u sim_default_history_days=%.0f\n", min_hist,
            dp.history_days);
-    printf("sim_mean_history=%.2f sim_mean_history_nonzero=%.2f sim_frac_full_history=%.4f\n",
-           (double)h_all / (double)n, n_with ? (double)h_with / (double)n_with : 0.0,
-           (double)n_full / (double)n);
+    printf("sim_packets=%zu sim_mean_history=%.2f sim_mean_history_nonzero=%.2f "
+           "sim_frac_full_history=%.4f\n",
+           stat_n, (double)h_all / (double)stat_n,
+           n_with ? (double)h_with / (double)n_with : 0.0, (double)n_full / (double)stat_n);
 
     /* The benchmark packets: exactly min_hist earlier detections each. */
     sim_params p;
