@@ -179,7 +179,8 @@ int cmd_demo(int argc, char **argv)
     log_sink sink;
     log_sink_init(&sink);
     log_sink_set_level(&sink, (log_level)cfg.log.level);
-    service_opts so = {.on_started = started, .arg = &d};
+    service_opts so = {.on_started = started, .arg = &d,
+                       .status_any_port = port == 0};
     int rc = service_run(&cfg, &sink, &so);
     fprintf(stderr, "oddsky demo: fed %llu simulated packets; checkpoint left in %s\n",
             (unsigned long long)embedded_fed(e), state_dir);

@@ -210,7 +210,8 @@ static int checkpoint(service *s, const char *why)
     }
     s->ck.ok = 1;
     s->ck.error[0] = '\0';
-    s->ck.bytes = len;
+    struct stat st;
+    s->ck.bytes = stat(s->ck.path, &st) == 0 ? (size_t)st.st_size : len;
     metrics_inc(metrics_counter_at(s->m_checkpoints, CK_OK));
     log_info_kv(&s->log_state, LOG_KV(LOG_UINT("bytes", len), LOG_STR("reason", why)),
                 "checkpoint written to %s", s->ck.path);
@@ -614,10 +615,20 @@ static json_t *status_json(void *ctx)
     json_object_set_new(rates, "dead_letters_5m", json_real(dl5));
     json_object_set_new(d, "rates_per_s", rates);
 
+    /* Quantiles interpolate inside histogram buckets (as Prometheus'
+     * histogram_quantile does) and can land above the largest value
+     * seen: never show a quantile above the maximum. */
     json_t *lat = json_object();
-    json_object_set_new(lat, "p50", num(1e3 * metrics_window_quantile(s->reg, s->m_latency, 0, 60, 0.5)));
-    json_object_set_new(lat, "p99", num(1e3 * metrics_window_quantile(s->reg, s->m_latency, 0, 60, 0.99)));
-    json_object_set_new(lat, "max", num(1e3 * metrics_window_max(s->reg, s->m_latency, 0, 60)));
+    double lmax = 1e3 * metrics_window_max(s->reg, s->m_latency, 0, 60);
+    double p50 = 1e3 * metrics_window_quantile(s->reg, s->m_latency, 0, 60, 0.5);
+    double p99 = 1e3 * metrics_window_quantile(s->reg, s->m_latency, 0, 60, 0.99);
+    if (isfinite(lmax)) {
+        p50 = p50 > lmax ? lmax : p50;
+        p99 = p99 > lmax ? lmax : p99;
+    }
+    json_object_set_new(lat, "p50", num(p50));
+    json_object_set_new(lat, "p99", num(p99));
+    json_object_set_new(lat, "max", num(lmax));
     json_object_set_new(lat, "window_s", json_integer(60));
     json_object_set_new(d, "latency_ms", lat);
 
@@ -964,7 +975,7 @@ int service_run(struct oddsky_config *cfg, log_sink *sink, const service_opts *o
         s->flag_rkt = bus_output_topic(s->bus, cfg->kafka.flagged_topic);
 
     /* Status endpoint. */
-    if (cfg->status.port) {
+    if (cfg->status.port || s->opts->status_any_port) {
         status_options so;
         status_options_default(&so);
         so.listen_addr = cfg->status.listen;

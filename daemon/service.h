@@ -30,6 +30,8 @@ typedef struct service_opts {
     const char *const *sets;     /* --set overrides, reapplied on reload */
     size_t n_sets;
     const char *banner;          /* printed once when consuming starts */
+    int status_any_port;         /* serve status on a free port even when
+                                    status.port is 0 (demo --port 0) */
     /* Called once from the loop after the status server is up (demo). */
     void (*on_started)(void *arg, int status_port);
     void *arg;
