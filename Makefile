@@ -26,7 +26,7 @@ CPPFLAGS += -D_POSIX_C_SOURCE=200809L -D_DEFAULT_SOURCE
 CFLAGS   += -std=c11 $(WARN) $(OPT) -g -fPIC -MMD -MP $(SAN)
 LDFLAGS  += $(SAN)
 
-DAEMON_LIBS := -lrdkafka -lavro -ljansson -luv -lhttp_parser -lpthread -lm
+DAEMON_LIBS := -lrdkafka -lavro -ljansson -luv -lhttp_parser -lz -lpthread -lm
 TEST_LIBS   := -lcmocka
 
 CORE_SRC   := $(sort $(wildcard core/*.c))

@@ -49,7 +49,9 @@
       "packet or source id longer than PACKET_ID_MAX - 1 bytes")              \
     X(INTERNAL, -16, "internal", "out of memory or a library failure")       \
     X(SCHEMA_CACHE_FULL, -17, "schema_cache_full",                            \
-      "a new writer schema while DECODER_MAX_SCHEMAS are cached")
+      "a new writer schema while DECODER_MAX_SCHEMAS are cached")            \
+    X(UNSUPPORTED_CODEC, -18, "unsupported_codec",                            \
+      "Avro container compressed with a codec other than null or deflate")
 
 enum packet_reason {
     PACKET_OK = 0,
@@ -58,7 +60,7 @@ enum packet_reason {
 #undef PACKET_REASON_ENUM
 };
 
-#define PACKET_REASON_COUNT 17u /* entries in PACKET_REASON_MAP */
+#define PACKET_REASON_COUNT 18u /* entries in PACKET_REASON_MAP */
 
 /* Short name ("bad_json") of a reason code; "ok" for 0, "unknown" for a
  * value outside the map.  Never NULL. */

@@ -1,5 +1,5 @@
 // fuzz-sources: daemon/config.c daemon/featmap.c daemon/log.c core/model.c core/calib.c core/decay.c core/density.c core/err.c core/kmeans.c core/reservoir.c core/rng.c core/scaler.c core/select.c core/series.c core/sketch.c core/snapshot.c core/vec.c
-// fuzz-libs: -lavro -ljansson -lm
+// fuzz-libs: -lavro -lz -ljansson -lm
 /*
  * fuzz_config.c - libFuzzer target for the configuration parser: the
  * input's first line as a `--set key=value` override (config_apply_set),

@@ -1,5 +1,6 @@
 // fuzz-sources: daemon/decode.c daemon/featmap.c core/series.c
-// fuzz-libs: -lavro -ljansson -lm
+// fuzz-libs: -lavro -lz -ljansson -lm
+// fuzz-env: ASAN_OPTIONS=fast_unwind_on_malloc=0
 /*
  * fuzz_decode.c - libFuzzer target for decoder_extract(): one Kafka
  * message of arbitrary bytes through framing detection, the Avro and JSON

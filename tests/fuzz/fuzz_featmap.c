@@ -1,5 +1,5 @@
 // fuzz-sources: daemon/decode.c daemon/featmap.c core/series.c
-// fuzz-libs: -lavro -ljansson -lm
+// fuzz-libs: -lavro -lz -ljansson -lm
 /*
  * fuzz_featmap.c - libFuzzer target for the feature map: arbitrary JSON
  * text as a "featmap" spec through featmap_validate() and featmap_new(),

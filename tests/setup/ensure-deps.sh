@@ -11,7 +11,7 @@ case "$build" in /*) ;; *) build="$top/$build" ;; esac
 # Sanitizer builds live under build/asan; the venv stays in build/.
 venvroot="$top/build"
 
-apt_pkgs=(build-essential pkg-config librdkafka-dev libavro-dev libjansson-dev
+apt_pkgs=(build-essential pkg-config librdkafka-dev libavro-dev libjansson-dev zlib1g-dev
           libuv1-dev libcmocka-dev libhttp-parser-dev kcat clang
           libclang-rt-14-dev prometheus chromium valgrind curl ca-certificates)
 missing=()
