@@ -478,14 +478,18 @@ int calib_load(calib *c, snap_reader *r)
     snap_get_f64s(r, c->fen + 1, c->fn);
     if (r->err)
         return r->err;
-    if (!(c->total >= 0) || !isfinite(c->total))
+    /* No real stream reaches these: each insert adds at most 2^60 (see
+     * decay.h) and a stream has fewer than 2^64 scores, so anything above
+     * 2^128 is a corrupt snapshot that would overflow on the next insert. */
+    const double cap = 0x1p128;
+    if (!(c->total >= 0 && c->total <= cap))
         return CORE_EFORMAT;
     find_lo_cell(c);
     for (uint32_t i = 0; i < c->n; i++)
-        if (!(c->cell[i] >= 0) || !isfinite(c->cell[i]))
+        if (!(c->cell[i] >= 0 && c->cell[i] <= cap))
             return CORE_EFORMAT;
     for (uint32_t i = 1; i <= c->fn; i++)
-        if (!(c->fen[i] >= 0) || !isfinite(c->fen[i]))
+        if (!(c->fen[i] >= 0 && c->fen[i] <= cap))
             return CORE_EFORMAT;
     return 0;
 }

@@ -8,6 +8,8 @@
 
 #include <math.h>
 
+#include "err.h"
+
 void decay_init(decay_clock *c, double half_life_days)
 {
     c->half_life_days = half_life_days > 0 ? half_life_days : 0;
@@ -37,9 +39,20 @@ double decay_advance(decay_clock *c, double t)
     double factor = 1.0;
     if (e >= DECAY_RENORM_EXP) {
         double m = floor(e / DECAY_RENORM_EXP);
-        c->t_ref += m * DECAY_RENORM_EXP * c->half_life_days;
-        e = (t - c->t_ref) / c->half_life_days;
-        factor = exp2(-m * DECAY_RENORM_EXP);
+        double t_ref = c->t_ref + m * DECAY_RENORM_EXP * c->half_life_days;
+        double e2 = (t - t_ref) / c->half_life_days;
+        if (e2 >= 0 && e2 < DECAY_RENORM_EXP) {
+            c->t_ref = t_ref;
+            e = e2;
+            factor = exp2(-m * DECAY_RENORM_EXP);
+        } else {
+            /* Rounding left t_ref off the period grid (a half-life tiny
+             * against the event time): restart the clock at t, which is
+             * exact up to the same rounding. */
+            factor = exp2(-e);
+            c->t_ref = t;
+            e = 0;
+        }
     }
     c->g = exp2(e);
     return factor;
@@ -63,4 +76,27 @@ void decay_load(decay_clock *c, snap_reader *r)
     c->t_now = snap_get_f64(r);
     c->g = snap_get_f64(r);
     c->started = (int)snap_get_u32(r);
+    if (r->err)
+        return;
+    /* A clock must be one decay_advance() could have produced: otherwise
+     * g can be anything and counters overflow after a few inserts. */
+    double e = 0;
+    if (!(c->half_life_days >= 0) || !isfinite(c->half_life_days) ||
+        (unsigned)c->started > 1)
+        goto bad;
+    if (c->started) {
+        if (!isfinite(c->t_ref) || !isfinite(c->t_now))
+            goto bad;
+        if (c->half_life_days > 0) {
+            /* decay_advance() keeps e in [0, 60) up to the rounding of
+             * moving t_ref by whole renormalisation periods. */
+            e = (c->t_now - c->t_ref) / c->half_life_days;
+            if (!(e >= -1.0 && e <= DECAY_RENORM_EXP + 1.0))
+                goto bad;
+        }
+    }
+    c->g = c->half_life_days > 0 ? exp2(e) : 1.0;
+    return;
+bad:
+    r->err = CORE_EFORMAT;
 }

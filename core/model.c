@@ -232,6 +232,16 @@ int model_params_check(const model_params *p, const char **field, char *why,
             rule = f->rule;
         }
     }
+    const double hl[4] = {p->scale_half_life_days, p->kmeans_half_life_days,
+                          p->sketch_half_life_days, p->calib_half_life_days};
+    static const char *const hl_name[4] = {
+        "scale_half_life_days", "kmeans_half_life_days",
+        "sketch_half_life_days", "calib_half_life_days"};
+    for (int i = 0; i < 4 && !bad; i++)
+        if (hl[i] > 0 && hl[i] < 1e-6) {
+            bad = hl_name[i];
+            rule = "must be 0 (never forget) or at least 1e-6 days";
+        }
     if (!bad && p->warm_n < p->k) {
         bad = "warm_n";
         rule = "must be >= k (seeding needs a point per cluster)";

@@ -200,6 +200,8 @@ static void restore(const uint8_t *buf, size_t len)
     exercise(m);
     n = snapshot(m);
     model *m2 = model_restore(work, n, &err);
+    if (!m2)
+        fprintf(stderr, "restore after observing: %s\n", core_strerror(err));
     check(m2 != NULL, "snapshot of an observed model restores");
     model_free(m2);
     model_free(m);
