@@ -74,7 +74,7 @@ if want core; then
           OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1 \
               "$py" tests/bench/sklearn_minibatch.py "$vec" 16 32 &&
           "$bin/core_bench" --n "$n" --dim 32 --k 64 |
-              sed 's/core_observe_per_s=/core_observe_per_s_d32_k64=/'; } |
+              sed 's/core_observe_per_s=/core_observe_per_s_d32_k64=/; s/model_bytes=/model_bytes_d32_k64=/'; } |
             sed "s/_per_s=/_per_s_run$r=/" | record || failed+=(core)
     done
     "$py" tests/bench/river_core.py "$vec" 16 32 "$river_n" | record || failed+=(river)
