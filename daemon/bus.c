@@ -36,6 +36,7 @@ struct bus_ticket {
     int64_t broker_ts_ms;
     int sealed;           /* handler returned: no more outputs */
     int tag;              /* the handler's mark, see bus_ticket_set_tag */
+    int failed;           /* never done: its offset must not be stored */
     bus_ticket *next_free;
 };
 
@@ -234,7 +235,7 @@ static void dr_cb(rd_kafka_t *rk, const rd_kafka_message_t *m, void *opaque)
         return;
     if (m->err == 0) {
         b->counters.delivered++;
-        if (--t->remaining == 0 && t->sealed)
+        if (--t->remaining == 0 && t->sealed && !t->failed)
             ticket_finish(b, t);
         return;
     }
@@ -443,6 +444,7 @@ static void serve_consumer(bus *b)
             t->attempts = 0;
             t->sealed = 0;
             t->tag = 0;
+            t->failed = 0;
             t->consumed_us = now_us();
             t->broker_ts_ms = rd_kafka_message_timestamp(m, NULL);
             int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
@@ -455,7 +457,7 @@ static void serve_consumer(bus *b)
             b->counters.consumed++;
             b->cb.on_message(b->cb.ctx, b, m, t);
             t->sealed = 1;
-            if (t->remaining == 0)
+            if (t->remaining == 0 && !t->failed)
                 ticket_finish(b, t);
             rd_kafka_message_destroy(m);
             handled++;
@@ -743,6 +745,15 @@ void bus_ticket_set_tag(bus_ticket *t, int tag)
     t->tag = tag;
 }
 
+void bus_ticket_fail(bus *b, bus_ticket *t, const char *why)
+{
+    t->failed = 1;
+    b->fatal = 1;
+    b->counters.delivery_failed++;
+    if (b->cb.on_fatal)
+        b->cb.on_fatal(b->cb.ctx, why);
+}
+
 void bus_stop_consuming(bus *b)
 {
     b->consuming = 0;
@@ -764,8 +775,9 @@ uint64_t bus_drain(bus *b, int timeout_ms)
         ;
     store_dirty(b);
     uint64_t left = b->in_flight;
-    /* Commit what is stored and leave the group (serves the revoke). */
-    rd_kafka_commit(b->consumer, NULL, 0);
+    /* Leave the group: the revoke stores what is done and, with automatic
+     * commit on, librdkafka commits the stored offsets at unassign. */
+    rd_kafka_queue_io_event_enable(b->cq, -1, NULL, 0);
     rd_kafka_consumer_close(b->consumer);
     return left;
 }

@@ -132,6 +132,11 @@ int bus_produce(bus *b, bus_ticket *t, rd_kafka_topic_t *rkt, const void *key,
  * daemon tells results from dead letters this way). */
 void bus_ticket_set_tag(bus_ticket *t, int tag);
 
+/* The handler could not produce what this input needs (not even a dead
+ * letter): the ticket never completes, so its offset and every later one
+ * of its partition stay unstored, and the daemon stops (on_fatal). */
+void bus_ticket_fail(bus *b, bus_ticket *t, const char *why);
+
 /* Stop taking new messages (drain starts).  Outstanding deliveries go on. */
 void bus_stop_consuming(bus *b);
 

@@ -33,6 +33,7 @@
 #define HDR_OFFSET "oddsky.input.offset"
 #define HDR_REASON "oddsky.reason"
 #define HDR_REASON_TEXT "oddsky.reason.text"
+#define HDR_ORIGINAL_BYTES "oddsky.original.bytes"
 #define PAUSED_UNHEALTHY_S 60
 #define HIST_GROUPS 48
 #define TAG_RESULT 1 /* bus ticket tag: the packet got a result */
@@ -351,6 +352,11 @@ static state_ledger_entry *ledger_entry(service *s, const char *topic,
     return NULL;
 }
 
+/* Dead letters carry the original bytes, cut to DEAD_LETTER_MAX_BYTES so
+ * that a message refused for its size still fits librdkafka's default
+ * message.max.bytes (1,000,000); a cut copy says so in headers. */
+#define DEAD_LETTER_MAX_BYTES (1000000u - 64u * 1024u)
+
 static void produce_dead(service *s, bus *b, bus_ticket *t,
                          const rd_kafka_message_t *m, int reason,
                          const char *text, bus_header *h, uint32_t nh)
@@ -358,12 +364,26 @@ static void produce_dead(service *s, bus *b, bus_ticket *t,
     const char *rname = reason == 1 ? "produce_failed" : packet_reason_name(reason);
     h[nh++] = (bus_header){HDR_REASON, rname, strlen(rname)};
     h[nh++] = (bus_header){HDR_REASON_TEXT, text, strlen(text)};
+    size_t len = m->len;
+    char orig[24];
+    if (len > DEAD_LETTER_MAX_BYTES) {
+        int ol = snprintf(orig, sizeof orig, "%zu", m->len);
+        h[nh++] = (bus_header){HDR_ORIGINAL_BYTES, orig, (size_t)ol};
+        len = DEAD_LETTER_MAX_BYTES;
+    }
     char err[256];
-    if (bus_produce(b, t, s->dlq_rkt, m->key, m->key_len, m->payload, m->len, h,
+    if (bus_produce(b, t, s->dlq_rkt, m->key, m->key_len, m->payload, len, h,
                     nh, err, sizeof err) != 0) {
-        /* Not even the dead-letter topic takes it: stop rather than lose. */
-        s->fatal = 1;
-        snprintf(s->fatal_why, sizeof s->fatal_why, "%s", err);
+        /* Not even the dead-letter topic takes it: stop rather than lose
+         * it.  The ticket never completes, so the offset is not stored. */
+        char why[512];
+        snprintf(why, sizeof why,
+                 "%s partition %d offset %lld was refused (%s) and its dead "
+                 "letter could not be produced: %s",
+                 rd_kafka_topic_name(m->rkt), (int)m->partition,
+                 (long long)m->offset, rname, err);
+        bus_ticket_fail(b, t, why);
+        return;
     }
     count_dead(s, reason);
     log_warn_kv(&s->log_bus,
@@ -385,7 +405,7 @@ static void on_message(void *ctx, bus *b, const rd_kafka_message_t *m,
     char pbuf[16], obuf[24];
     int pl = snprintf(pbuf, sizeof pbuf, "%d", (int)m->partition);
     int ol = snprintf(obuf, sizeof obuf, "%lld", (long long)m->offset);
-    bus_header h[5] = {
+    bus_header h[6] = {
         {HDR_TOPIC, topic, strlen(topic)},
         {HDR_PARTITION, pbuf, (size_t)pl},
         {HDR_OFFSET, obuf, (size_t)ol},
@@ -437,8 +457,14 @@ static int64_t on_assign(void *ctx, const char *topic, int32_t part,
     s->cache_entry = NULL;
     state_ledger_entry *le = ledger_entry(s, topic, part);
     int64_t learned = le ? le->learned : -1;
+    /* Start at min(committed, learned + 1).  With nothing committed the
+     * results of what the model learned may never have been delivered:
+     * read the partition from its beginning (what is already learned is
+     * scored and re-published, not learned again). */
     int64_t start = RD_KAFKA_OFFSET_INVALID;
-    if (learned >= 0 && (committed < 0 || committed > learned + 1))
+    if (learned >= 0 && committed < 0)
+        start = RD_KAFKA_OFFSET_BEGINNING;
+    else if (learned >= 0 && committed > learned + 1)
         start = learned + 1;
     log_info_kv(&s->log_bus,
                 LOG_KV(LOG_STR("topic", topic), LOG_INT("partition", part),
@@ -446,7 +472,10 @@ static int64_t on_assign(void *ctx, const char *topic, int32_t part,
                        LOG_INT("start", start)),
                 start >= 0 ? "partition assigned; starting after the last learned "
                              "offset to learn what the last checkpoint missed"
-                           : "partition assigned");
+                : start == RD_KAFKA_OFFSET_BEGINNING
+                    ? "partition assigned; nothing committed yet, so reading it "
+                      "from the beginning (learned packets are not learned again)"
+                    : "partition assigned");
     return start;
 }
 
@@ -880,7 +909,7 @@ static void on_tick(uv_timer_t *h)
     log_sink_flush_suppressed(s->sink);
 
     if (s->fatal && !s->draining)
-        begin_stop(s, "fatal error");
+        begin_stop(s, "fatal error"); /* on_fatal logged the reason */
     if (s->draining) {
         /* finish() waits for the results in flight, up to the deadline. */
         finish(s);

@@ -272,3 +272,10 @@ def inspect_checkpoint(state_dir, timeout_s=60):
     if p.returncode != 0:
         raise RuntimeError(f"{' '.join(cmd)} exited {p.returncode}:\n{p.stderr}")
     return json.loads(p.stdout)
+
+
+# Dead letters carry at most this many bytes of the original message (the
+# rest is cut, and the header oddsky.original.bytes gives the full size):
+# README, "Input: framings and the feature map"; daemon/service.c
+# DEAD_LETTER_MAX_BYTES.
+DEAD_LETTER_MAX_BYTES = 1000000 - 64 * 1024
