@@ -83,6 +83,9 @@ struct model {
     /* selection scratch */
     double *sel_centers; /* select_k_max x dim */
     uint32_t suggested_k;
+    int sel_active;          /* a selection round is under way */
+    uint32_t sel_next_k, sel_best_k;
+    double sel_best_bic;
     double suggested_bic, suggested_silhouette;
 
     /* counters */
@@ -745,6 +748,10 @@ static void put_state(const model *m, snap_writer *w)
     snap_put_u32(w, m->suggested_k);
     snap_put_f64(w, m->suggested_bic);
     snap_put_f64(w, m->suggested_silhouette);
+    snap_put_u32(w, (uint32_t)m->sel_active);
+    snap_put_u32(w, m->sel_next_k);
+    snap_put_u32(w, m->sel_best_k);
+    snap_put_f64(w, m->sel_best_bic);
     snap_put_f64(w, m->grid.grid_width);
     snap_put_f64(w, m->grid.fd_width);
     snap_put_f64(w, m->grid.scott_width);
@@ -842,6 +849,10 @@ model *model_restore(const uint8_t *buf, size_t len, int *err)
     m->suggested_k = snap_get_u32(&r);
     m->suggested_bic = snap_get_f64(&r);
     m->suggested_silhouette = snap_get_f64(&r);
+    m->sel_active = snap_get_u32(&r) != 0;
+    m->sel_next_k = snap_get_u32(&r);
+    m->sel_best_k = snap_get_u32(&r);
+    m->sel_best_bic = snap_get_f64(&r);
     m->grid.grid_width = snap_get_f64(&r);
     m->grid.fd_width = snap_get_f64(&r);
     m->grid.scott_width = snap_get_f64(&r);
@@ -941,50 +952,96 @@ uint32_t model_score_histogram(const model *m, double *edges, double *mass,
     return calib_histogram(m->cal, edges, mass, n);
 }
 
+/* Selection works on at most this many reservoir rows, one k per call, so
+ * one step costs tens of milliseconds at k = 64, d = 16. */
+#define MODEL_SELECT_ROWS 2048u
+
+static int select_range(const model *m, size_t *n, uint32_t *kmin,
+                        uint32_t *kmax)
+{
+    *n = reservoir_count(m->res);
+    if (*n > MODEL_SELECT_ROWS)
+        *n = MODEL_SELECT_ROWS;
+    *kmin = m->p.select_k_min < 1 ? 1 : m->p.select_k_min;
+    *kmax = m->p.select_k_max;
+    if (*n < 2 * (size_t)*kmax)
+        *kmax = (uint32_t)(*n / 2);
+    if (!m->warm || *kmax < *kmin || *kmax < 2)
+        return CORE_EAGAIN;
+    return 0;
+}
+
+int model_select_begin(model *m)
+{
+    size_t n;
+    uint32_t kmin, kmax;
+    int rc = select_range(m, &n, &kmin, &kmax);
+    if (rc)
+        return rc;
+    m->sel_active = 1;
+    m->sel_next_k = kmin;
+    m->sel_best_k = 0;
+    m->sel_best_bic = -INFINITY;
+    return 0;
+}
+
+int model_select_tick(model *m)
+{
+    if (!m->sel_active)
+        return CORE_EAGAIN;
+    const uint32_t d = m->p.dim;
+    size_t n;
+    uint32_t kmin, kmax;
+    if (select_range(m, &n, &kmin, &kmax) != 0) {
+        m->sel_active = 0;
+        return CORE_EAGAIN;
+    }
+    const double *X = reservoir_rows(m->res);
+    select_kmeans_opts o = {.restarts = 1, .max_iter = 20, .local_trials = 0};
+    uint32_t k = m->sel_next_k++;
+    double inertia;
+    if (k <= kmax && select_kmeans(m->ws, X, n, k, &o, &m->r, m->sel_centers,
+                                   m->labels, &inertia) == 0) {
+        double bic = select_bic(X, n, d, m->sel_centers, m->labels, k);
+        if (isfinite(bic) && bic > m->sel_best_bic) {
+            m->sel_best_bic = bic;
+            m->sel_best_k = k;
+        }
+    }
+    if (m->sel_next_k <= kmax)
+        return 0;
+    /* Last k of the round: the silhouette of the best one, then publish. */
+    m->sel_active = 0;
+    if (m->sel_best_k == 0)
+        return CORE_EAGAIN;
+    double sil = NAN;
+    select_kmeans(m->ws, X, n, m->sel_best_k, &o, &m->r, m->sel_centers,
+                  m->labels, &inertia);
+    size_t ns = n < MODEL_SILHOUETTE_SAMPLE ? n : MODEL_SILHOUETTE_SAMPLE;
+    if (m->sel_best_k >= 2 &&
+        select_silhouette(m->ws, X, ns, d, m->labels, m->sel_best_k, &sil) != 0)
+        sil = NAN;
+    m->suggested_k = m->sel_best_k;
+    m->suggested_bic = m->sel_best_bic;
+    m->suggested_silhouette = sil;
+    return 1;
+}
+
 int model_select(model *m, uint32_t *suggested_k, double *bic_best,
                  double *silhouette_best)
 {
-    const uint32_t d = m->p.dim;
-    size_t n = reservoir_count(m->res);
-    uint32_t kmin = m->p.select_k_min, kmax = m->p.select_k_max;
-    if (kmin < 1)
-        kmin = 1;
-    if (n < 2 * (size_t)kmax)
-        kmax = (uint32_t)(n / 2);
-    if (!m->warm || kmax < kmin || kmax < 2)
-        return CORE_EAGAIN;
-    const double *X = reservoir_rows(m->res);
-    select_kmeans_opts o = {.restarts = 3, .max_iter = 50, .local_trials = 0};
-    double best = -INFINITY, best_sil = NAN;
-    uint32_t best_k = 0;
-    for (uint32_t k = kmin; k <= kmax; k++) {
-        double inertia;
-        if (select_kmeans(m->ws, X, n, k, &o, &m->r, m->sel_centers, m->labels,
-                          &inertia) != 0)
-            continue;
-        double bic = select_bic(X, n, d, m->sel_centers, m->labels, k);
-        if (isfinite(bic) && bic > best) {
-            best = bic;
-            best_k = k;
-        }
-    }
-    if (best_k == 0)
-        return CORE_EAGAIN;
-    double inertia;
-    select_kmeans(m->ws, X, n, best_k, &o, &m->r, m->sel_centers, m->labels,
-                  &inertia);
-    size_t ns = n < MODEL_SILHOUETTE_SAMPLE ? n : MODEL_SILHOUETTE_SAMPLE;
-    if (best_k >= 2 && select_silhouette(m->ws, X, ns, d, m->labels, best_k,
-                                         &best_sil) != 0)
-        best_sil = NAN;
-    m->suggested_k = best_k;
-    m->suggested_bic = best;
-    m->suggested_silhouette = best_sil;
+    int rc = model_select_begin(m);
+    if (rc)
+        return rc;
+    while ((rc = model_select_tick(m)) == 0)
+        ;
+    if (rc < 0)
+        return rc;
     if (suggested_k)
-        *suggested_k = best_k;
+        *suggested_k = m->suggested_k;
     if (bic_best)
-        *bic_best = best;
+        *bic_best = m->suggested_bic;
     if (silhouette_best)
-        *silhouette_best = best_sil;
+        *silhouette_best = m->suggested_silhouette;
     return 0;
 }

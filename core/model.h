@@ -201,4 +201,14 @@ uint32_t model_score_histogram(const model *m, double *edges, double *mass,
 int model_select(model *m, uint32_t *suggested_k, double *bic_best,
                  double *silhouette_best);
 
+/* The same in steps, for a timer: model_select_begin() starts a round
+ * (CORE_EAGAIN before warm-up or with too small a reservoir); each
+ * model_select_tick() evaluates one k (at most 2048 reservoir rows, one
+ * k-means++ run of 20 Lloyd iterations) and returns 0 while the round goes
+ * on, 1 when it ended and the suggestion (model_summary.suggested_k) was
+ * updated, or CORE_EAGAIN when no round is under way.  The round's state
+ * is part of the snapshot. */
+int model_select_begin(model *m);
+int model_select_tick(model *m);
+
 #endif

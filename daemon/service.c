@@ -76,6 +76,7 @@ typedef struct service {
 
     uint64_t start_ms;
     uint64_t last_ck_ms;
+    uint64_t last_select_ms;
     int draining, stop_now, fatal;
     char fatal_why[512];
     int exit_code;
@@ -918,6 +919,20 @@ static void on_tick(uv_timer_t *h)
     uint32_t every = s->cfg->state.checkpoint_interval_s;
     if (every && now - s->last_ck_ms >= (uint64_t)every * 1000)
         checkpoint(s, "interval");
+
+    /* Model selection: one k per tick, a round every select_interval_s. */
+    model *m = pipeline_model(s->pl);
+    uint32_t sel = s->cfg->run.select_interval_s;
+    if (sel && now - s->last_select_ms >= (uint64_t)sel * 1000 &&
+        model_select_begin(m) == 0)
+        s->last_select_ms = now;
+    if (model_select_tick(m) == 1) {
+        model_summary after;
+        model_summarize(m, &after);
+        log_info_kv(&s->log, LOG_KV(LOG_UINT("suggested_k", after.suggested_k),
+                                    LOG_UINT("k", after.k)),
+                    "model selection (X-means BIC over the reservoir) done");
+    }
 }
 
 int service_run(struct oddsky_config *cfg, log_sink *sink, const service_opts *opts)
@@ -959,6 +974,10 @@ int service_run(struct oddsky_config *cfg, log_sink *sink, const service_opts *o
         goto out_pipeline;
     }
     s->last_ck_ms = mono_ms();
+    s->last_select_ms = mono_ms();
+    if (cfg->run.auto_resize)
+        log_warn(&s->log, "run.auto_resize is not implemented in this version: "
+                          "the suggested k is shown on the status page only");
 
     /* The bus. */
     const char **ckv = calloc(2 * cfg->kafka.consumer.n + 1, sizeof *ckv);

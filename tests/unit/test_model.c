@@ -240,6 +240,46 @@ static void warm_up_contract(void **state)
     model_free(a);
 }
 
+static void selection_finds_the_blobs(void **state)
+{
+    (void)state;
+    /* Three well-separated spherical blobs, nothing missing: X-means BIC
+     * (Pelleg & Moore 2000) over the reservoir should prefer k = 3 among
+     * 2..8.  Stepping and the one-call form agree (same rng draws). */
+    model *a = small_model(11, MODEL_SCORE_DENSITY);
+    model *b = small_model(11, MODEL_SCORE_DENSITY);
+    rng r;
+    rng_seed(&r, 4);
+    model_result res;
+    for (int i = 0; i < 3000; i++) {
+        double x[DIM];
+        int blob = (int)rng_below(&r, 3);
+        for (int j = 0; j < DIM; j++)
+            x[j] = 6.0 * blob * (j % 2 ? 1 : -1) + rng_normal(&r);
+        model_input in = {.x = x, .time_days = 60000.0 + i / 2000.0, .learn = 1};
+        model_observe(a, &in, &res);
+        model_observe(b, &in, &res);
+    }
+    uint32_t k = 0;
+    double bic = 0, sil = 0;
+    assert_int_equal(model_select(a, &k, &bic, &sil), 0);
+    print_message("suggested k=%u bic=%g silhouette=%g\n", k, bic, sil);
+    assert_int_equal(k, 3);
+    assert_true(sil > 0.5);
+    assert_int_equal(model_select_begin(b), 0);
+    int rc, steps = 0;
+    while ((rc = model_select_tick(b)) == 0)
+        steps++;
+    assert_int_equal(rc, 1);
+    assert_int_equal(steps, 6); /* k = 2..8: seven ticks */
+    model_summary s;
+    model_summarize(b, &s);
+    assert_int_equal(s.suggested_k, 3);
+    assert_int_equal(model_select_tick(b), CORE_EAGAIN);
+    model_free(a);
+    model_free(b);
+}
+
 static void bad_params_are_named(void **state)
 {
     (void)state;
@@ -267,6 +307,7 @@ int main(void)
         cmocka_unit_test(corrupt_snapshots_are_refused),
         cmocka_unit_test(observing_allocates_nothing),
         cmocka_unit_test(warm_up_contract),
+        cmocka_unit_test(selection_finds_the_blobs),
         cmocka_unit_test(bad_params_are_named),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
