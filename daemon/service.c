@@ -537,6 +537,12 @@ static const char *phase(const service *s)
     return sum.warm ? "scoring" : "warming";
 }
 
+/* The model reports flags per 10-hour night; run.night_hours rescales. */
+static double night_scale(const service *s)
+{
+    return s->cfg->run.night_hours / 10.0;
+}
+
 static json_t *model_json(service *s)
 {
     model *m = pipeline_model(s->pl);
@@ -576,7 +582,8 @@ static json_t *model_json(service *s)
     json_object_set_new(o, "clusters", cl);
     json_object_set_new(o, "sketch_fill", num(sum.space_fill));
     json_object_set_new(o, "threshold", num(sum.threshold));
-    json_object_set_new(o, "expected_flags_per_night", num(sum.expected_flags_per_night));
+    json_object_set_new(o, "expected_flags_per_night",
+                        num(sum.expected_flags_per_night * night_scale(s)));
     double edges[HIST_GROUPS + 1], mass[HIST_GROUPS + 1];
     uint32_t n = model_score_histogram(m, edges, mass, HIST_GROUPS);
     json_t *e = json_array(), *ms = json_array(), *h = json_object();
@@ -904,7 +911,8 @@ static void on_tick(uv_timer_t *h)
     model_summary sum;
     model_summarize(pipeline_model(s->pl), &sum);
     metrics_set(metrics_gauge_at(s->m_threshold, 0), sum.threshold);
-    metrics_set(metrics_gauge_at(s->m_expected, 0), sum.expected_flags_per_night);
+    metrics_set(metrics_gauge_at(s->m_expected, 0),
+                sum.expected_flags_per_night * night_scale(s));
     metrics_set(metrics_gauge_at(s->m_model_bytes, 0), (double)sum.bytes);
     metrics_tick(s->reg, (double)now / 1000.0);
     log_sink_flush_suppressed(s->sink);
