@@ -215,7 +215,7 @@ static int checkpoint(service *s, const char *why)
     struct stat st;
     s->ck.bytes = stat(s->ck.path, &st) == 0 ? (size_t)st.st_size : len;
     metrics_inc(metrics_counter_at(s->m_checkpoints, CK_OK));
-    log_info_kv(&s->log_state, LOG_KV(LOG_UINT("bytes", len), LOG_STR("reason", why)),
+    log_info_kv(&s->log_state, LOG_KV(LOG_UINT("bytes", s->ck.bytes), LOG_STR("reason", why)),
                 "checkpoint written to %s", s->ck.path);
     return 0;
 }
