@@ -139,4 +139,4 @@ clean:
 # Files embedded with .incbin (not seen by -MMD).
 $(BUILD)/daemon/demo_assets.o: config/demo-featmap.json
 
--include $(CORE_OBJ:.o=.d) $(DAEMON_OBJ:.o=.d)
+-include $(CORE_OBJ:.o=.d) $(DAEMON_OBJ:.o=.d) $(UNIT_BIN:=.d) $(BENCH_BIN:=.d)

@@ -21,54 +21,7 @@
 #include "core/rng.h"
 #include "core/select.h"
 
-/* Failing allocator: malloc/calloc fail once fa_countdown allocations
- * have succeeded (-1 = never).  Calls go on to the next allocator in the
- * link order (libc, or a sanitizer's), so frees stay consistent. */
-static long fa_countdown = -1;
-static void *(*fa_next_malloc)(size_t);
-static void *(*fa_next_calloc)(size_t, size_t);
-static unsigned char fa_boot[1024];
-static size_t fa_boot_used;
-
-static int fa_should_fail(void)
-{
-    if (fa_countdown < 0)
-        return 0;
-    if (fa_countdown == 0)
-        return 1;
-    fa_countdown--;
-    return 0;
-}
-
-void *malloc(size_t n)
-{
-    if (!fa_next_malloc)
-        *(void **)&fa_next_malloc = dlsym(RTLD_NEXT, "malloc");
-    if (fa_should_fail())
-        return NULL;
-    return fa_next_malloc(n);
-}
-
-void *calloc(size_t a, size_t b)
-{
-    static int resolving;
-    if (!fa_next_calloc) {
-        if (resolving) { /* dlsym itself may ask for zeroed memory */
-            size_t n = (a * b + 15) & ~(size_t)15;
-            if (fa_boot_used + n > sizeof fa_boot)
-                return NULL;
-            void *p = fa_boot + fa_boot_used;
-            fa_boot_used += n;
-            return p; /* static storage: already zero */
-        }
-        resolving = 1;
-        *(void **)&fa_next_calloc = dlsym(RTLD_NEXT, "calloc");
-        resolving = 0;
-    }
-    if (fa_should_fail())
-        return NULL;
-    return fa_next_calloc(a, b);
-}
+#include "failalloc.h"
 
 static kmeans *make(uint32_t d, uint32_t k, double H)
 {
