@@ -121,16 +121,21 @@ def _out_total(broker, topic):
     return sum(ku.end_offsets(broker, topic).values())
 
 
-def _caught_up(total, parts=PARTS):
-    """Predicate on /status: every assigned partition's stored offset at its
-    high watermark, the watermarks summing to `total`, nothing in flight."""
+def _caught_up(total, parts=PARTS, broker=None, group=None, topic=None):
+    """Predicate on /status: `parts` partitions assigned, nothing in flight,
+    the watermarks summing to `total`, and every partition's offset stored
+    up to its high watermark; with broker/group/topic given, the stored
+    offsets are read from the broker (the group's committed offsets equal
+    the topic's end offsets) rather than from the status page."""
     def pred(doc):
         ps = doc.get("partitions") or []
-        return (len(ps) == parts
-                and sum(p["high_watermark"] or 0 for p in ps) == total
-                and all(p["stored"] is not None and p["stored"] == p["high_watermark"]
-                        for p in ps)
-                and all(p["in_flight"] == 0 for p in ps))
+        if not (len(ps) == parts and sum(p["high_watermark"] or 0 for p in ps) == total
+                and all(p["in_flight"] == 0 for p in ps)):
+            return False
+        if broker is not None:
+            ends = ku.end_offsets(broker, topic)
+            return sum(ends.values()) == total and ku.committed_offsets(broker, group, topic) == ends
+        return all(p["stored"] is not None and p["stored"] == p["high_watermark"] for p in ps)
     return pred
 
 
@@ -332,7 +337,10 @@ def test_broker_killed_and_restarted_mid_stream(broker, kafka_local, new_topic, 
         print(f"[broker-kill] broker back after {down:.1f} s down")
         rc_sim = sim.wait(timeout=180)
         assert rc_sim == 0, f"the simulator failed across the broker restart: {sim.stderr.read()}"
-        doc = du.wait_status(proc, port, _caught_up(n), 180, "the end of the input")
+        doc = du.wait_status(proc, port, _caught_up(n, PARTS, broker, group, in_t), 180,
+                             "the end of the input (committed offsets at the end)")
+        print(f"[{in_t}] status partitions at the end (partition, stored, high): "
+              f"{[(p['partition'], p['stored'], p['high_watermark']) for p in doc['partitions']]}")
         t_all = time.monotonic() - t0
         rc, secs, killed = du.stop(proc)
         assert (rc, killed) == (0, False), du.log_tail(proc)
@@ -357,7 +365,7 @@ def test_broker_down_longer_than_the_retry_window(broker, kafka_local, new_topic
     with results waiting: the daemon keeps running, pauses its input at
     kafka.max_in_flight, produces the timed-out results again and resumes
     when the broker returns."""
-    n, timeout_ms, max_in_flight = 100_000, 5000, 2000
+    n, timeout_ms, max_in_flight = 200_000, 5000, 2000
     in_t, out_t, dlq_t = _topics(new_topic, PARTS, "bd")
     schema_dir = du.write_schema_dir(tmp_path / "schemas", SCHEMA_ID)
     port, group = ku.free_port(), ku.unique_name("g")
@@ -373,16 +381,21 @@ def test_broker_down_longer_than_the_retry_window(broker, kafka_local, new_topic
     t0 = time.monotonic()
     seen = {"phases": set(), "in_flight_max": 0, "healthz": set()}
     try:
-        # Kill the broker as soon as results start: the consumer has
+        # Kill the broker as soon as the first results reach the output
+        # topic (watched on the broker: the status page answers from the
+        # daemon's loop, which is busy with the backlog): the consumer has
         # fetched far more than max_in_flight packets by then.
+        from confluent_kafka import Consumer, TopicPartition
+        watch = Consumer({"bootstrap.servers": broker, "group.id": ku.unique_name("w")})
         deadline = time.monotonic() + 60
-        while True:
-            d = du.status(port, timeout_s=2)
-            if d and d["counts"]["packets"] > 0:
-                break
-            assert proc.poll() is None, du.log_tail(proc)
-            assert time.monotonic() < deadline, "no packet consumed in 60 s"
-            time.sleep(0.02)
+        try:
+            while watch.get_watermark_offsets(TopicPartition(out_t, 0), timeout=5,
+                                              cached=False)[1] <= 0:
+                assert proc.poll() is None, du.log_tail(proc)
+                assert time.monotonic() < deadline, "no result in 60 s"
+                time.sleep(0.01)
+        finally:
+            watch.close()
         kafka_local.kill()
         t_kill = time.monotonic()
         doc = du.status(port)
@@ -408,7 +421,10 @@ def test_broker_down_longer_than_the_retry_window(broker, kafka_local, new_topic
               f"{time.monotonic() - t1:.1f} s); while down: phases {sorted(seen['phases'])}, "
               f"in flight at most {seen['in_flight_max']}, /healthz {sorted(seen['healthz'], key=str)}, "
               f"redelivered {mid['counts']['errors']['redelivered']}")
-        doc = du.wait_status(proc, port, _caught_up(n), 180, "the end of the input")
+        doc = du.wait_status(proc, port, _caught_up(n, PARTS, broker, group, in_t), 180,
+                             "the end of the input (committed offsets at the end)")
+        print(f"[{in_t}] status partitions at the end (partition, stored, high): "
+              f"{[(p['partition'], p['stored'], p['high_watermark']) for p in doc['partitions']]}")
         t_all = time.monotonic() - t0
         rc, secs, killed = du.stop(proc)
         assert (rc, killed) == (0, False), du.log_tail(proc)
