@@ -316,7 +316,9 @@ def _wait_end_or_stall(proc, port, n, broker, group, in_t, timeout_s=180):
                         f"daemon stopped consuming: {doc['counts']['packets']} of {n} packets "
                         f"consumed, {len(ps)} partitions assigned, nothing in flight, phase "
                         f"{doc.get('phase')}; partitions paused before a revoke stay paused "
-                        f"in librdkafka when assigned again.\n" + "\n".join(lines[-8:]),
+                        f"in librdkafka when assigned again; (partition, stored, high "
+                        f"watermark): {[(p['partition'], p['stored'], p['high_watermark']) for p in ps]}"
+                        f"\n" + "\n".join(lines[-8:]),
                         pytrace=False)
         raise e
 
@@ -386,14 +388,17 @@ def test_broker_down_longer_than_the_retry_window(broker, kafka_local, new_topic
     with results waiting: the daemon keeps running, pauses its input at
     kafka.max_in_flight, produces the timed-out results again and resumes
     when the broker returns."""
-    n, timeout_ms, max_in_flight = 200_000, 5000, 2000
+    n, timeout_ms, max_in_flight = 200_000, 5000, 1000
     in_t, out_t, dlq_t = _topics(new_topic, PARTS, "bd")
     schema_dir = du.write_schema_dir(tmp_path / "schemas", SCHEMA_ID)
     port, group = ku.free_port(), ku.unique_name("g")
     state = tmp_path / "state"
     cfg = _base_config(broker, in_t, out_t, dlq_t, group, state, port, schema_dir,
                        checkpoint_interval_s=2,
-                       producer={"message.timeout.ms": timeout_ms})
+                       # linger.ms holds each batch of results for 1 s, so
+                       # results are waiting whenever the broker dies.
+                       producer={"message.timeout.ms": timeout_ms, "linger.ms": 1000,
+                                 "batch.size": 900000})
     cfg["kafka"]["max_in_flight"] = max_in_flight
     poll_batch = cfg["kafka"].get("poll_batch", 1024)  # config.c default
     _warm_coordinator(broker)
