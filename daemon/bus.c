@@ -85,6 +85,8 @@ struct bus {
     uint32_t n_out;
     bus_counters counters;
     int any_dirty;
+    int64_t last_report_us;   /* latest delivery report, any result */
+    int64_t stall_us;         /* in flight with no report this long: purge */
 };
 
 static int64_t now_us(void)
@@ -231,6 +233,7 @@ static void dr_cb(rd_kafka_t *rk, const rd_kafka_message_t *m, void *opaque)
 {
     bus *b = opaque;
     bus_ticket *t = m->_private;
+    b->last_report_us = now_us();
     if (!t)
         return;
     if (m->err == 0) {
@@ -243,6 +246,7 @@ static void dr_cb(rd_kafka_t *rk, const rd_kafka_message_t *m, void *opaque)
      * message.timeout.ms; a retriable cause (broker down, timeout) is
      * produced again, anything else stops the daemon. */
     int retriable = m->err == RD_KAFKA_RESP_ERR__MSG_TIMED_OUT ||
+                    m->err == RD_KAFKA_RESP_ERR__PURGE_QUEUE ||
                     m->err == RD_KAFKA_RESP_ERR__TRANSPORT ||
                     m->err == RD_KAFKA_RESP_ERR__ALL_BROKERS_DOWN ||
                     m->err == RD_KAFKA_RESP_ERR_NOT_ENOUGH_REPLICAS ||
@@ -356,6 +360,9 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
             if (slot_add(b, tp->topic, tp->partition) < 0 && b->cb.on_log)
                 b->cb.on_log(b->cb.ctx, 3, "ASSIGN",
                              "more partitions assigned than kafka.max_partitions");
+            int sidx = slot_find(b, tp->topic, tp->partition);
+            if (sidx >= 0 && !tp->err && tp->offset >= 0)
+                b->slots[sidx].stored = tp->offset; /* shown until one moves */
             if (b->cb.on_assign) {
                 int64_t committed = tp->err ? RD_KAFKA_OFFSET_INVALID : tp->offset;
                 int64_t start = b->cb.on_assign(b->cb.ctx, tp->topic, tp->partition,
@@ -367,10 +374,13 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
             rd_kafka_incremental_assign(rk, parts);
         else
             rd_kafka_assign(rk, parts);
-        if (b->paused) {
-            /* New partitions join the paused state. */
+        /* librdkafka keeps a partition's pause state across unassign and
+         * assign: a partition paused before a rebalance would come back
+         * paused for good.  Set it explicitly either way. */
+        if (b->paused)
             rd_kafka_pause_partitions(rk, parts);
-        }
+        else
+            rd_kafka_resume_partitions(rk, parts);
     } else {
         bus_revoke(b, parts, rd_kafka_assignment_lost(rk));
         if (coop)
@@ -497,10 +507,36 @@ static void on_ppoll(uv_poll_t *h, int status, int events)
     serve_producer(b);
 }
 
+/* Liveness: results in flight but no delivery report at all for longer
+ * than twice message.timeout.ms means librdkafka is holding them without
+ * ever reporting (seen after a broker outage while the idempotent producer
+ * was young).  Purging the local queues makes it report them (as
+ * _PURGE_QUEUE), and dr_cb produces them again; nothing is stored or lost
+ * in between. */
+static void watchdog(bus *b)
+{
+    int64_t now = now_us();
+    if (b->in_flight == 0 || b->fatal) {
+        b->last_report_us = now;
+        return;
+    }
+    if (now - b->last_report_us < b->stall_us)
+        return;
+    b->last_report_us = now;
+    b->counters.purges++;
+    if (b->cb.on_log)
+        b->cb.on_log(b->cb.ctx, 4, "STALL",
+                     "results in flight with no delivery report for twice "
+                     "message.timeout.ms: purging the producer's queues to "
+                     "produce them again");
+    rd_kafka_purge(b->producer, RD_KAFKA_PURGE_F_QUEUE);
+}
+
 static void on_timer(uv_timer_t *h)
 {
     bus *b = h->data;
     serve_producer(b);
+    watchdog(b);
     serve_consumer(b);
 }
 
@@ -620,6 +656,15 @@ int bus_new(uv_loop_t *loop, const bus_opts *o, const bus_callbacks *cb,
             rd_kafka_conf_destroy(pc);
             goto fail;
         }
+    char tmo[32];
+    size_t tmo_len = sizeof tmo;
+    long timeout_ms = 300000;
+    if (rd_kafka_conf_get(pc, "message.timeout.ms", tmo, &tmo_len) == RD_KAFKA_CONF_OK)
+        timeout_ms = atol(tmo);
+    if (timeout_ms <= 0)
+        timeout_ms = 300000; /* 0 = infinite: check every 10 minutes */
+    b->stall_us = (int64_t)timeout_ms * 2000;
+    b->last_report_us = now_us();
     rd_kafka_conf_set_opaque(pc, b);
     rd_kafka_conf_set_dr_msg_cb(pc, dr_cb);
     rd_kafka_conf_set_error_cb(pc, error_cb);
@@ -762,6 +807,11 @@ void bus_stop_consuming(bus *b)
 uint64_t bus_in_flight(const bus *b)
 {
     return b->in_flight;
+}
+
+int bus_paused(const bus *b)
+{
+    return b->paused;
 }
 
 uint64_t bus_drain(bus *b, int timeout_ms)

@@ -108,6 +108,7 @@ typedef struct bus_counters {
     uint64_t consumer_errors;
     uint64_t pauses;
     uint64_t offsets_stored;
+    uint64_t purges;          /* stalled producer queues purged (watchdog) */
 } bus_counters;
 
 /* Create and subscribe.  Returns 0 or a negative errno with err filled. */
@@ -142,6 +143,10 @@ void bus_stop_consuming(bus *b);
 
 /* Tickets still waiting on deliveries. */
 uint64_t bus_in_flight(const bus *b);
+
+/* Nonzero while input is paused for back-pressure (also with no
+ * partition assigned, e.g. after a revoke during a broker outage). */
+int bus_paused(const bus *b);
 
 /*
  * Flush the producer for at most timeout_ms, store every done offset,

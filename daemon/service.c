@@ -676,6 +676,7 @@ static json_t *status_json(void *ctx)
     json_object_set_new(counts, "flags", json_integer((json_int_t)metrics_counter_at(s->m_flags, 0)->v));
     json_object_set_new(counts, "learned", json_integer((json_int_t)metrics_counter_at(s->m_learned, 0)->v));
     json_object_set_new(counts, "rescored", json_integer((json_int_t)metrics_counter_at(s->m_rescored, 0)->v));
+    json_object_set_new(counts, "in_flight", json_integer(s->bus ? (json_int_t)bus_in_flight(s->bus) : 0));
     json_t *dl = json_object();
     for (uint32_t i = 0; i < metrics_series(s->m_dead); i++)
         json_object_set_new(dl, reason_values[i], json_integer((json_int_t)metrics_counter_at(s->m_dead, i)->v));
@@ -685,6 +686,7 @@ static json_t *status_json(void *ctx)
     json_object_set_new(er, "delivery_failed", json_integer(bc ? (json_int_t)bc->delivery_failed : 0));
     json_object_set_new(er, "redelivered", json_integer(bc ? (json_int_t)bc->redelivered : 0));
     json_object_set_new(er, "consumer", json_integer(bc ? (json_int_t)bc->consumer_errors : 0));
+    json_object_set_new(er, "stall_purges", json_integer(bc ? (json_int_t)bc->purges : 0));
     json_object_set_new(er, "type_errors", json_integer((json_int_t)pc->type_errors));
     json_object_set_new(er, "encode", json_integer((json_int_t)pc->encode_errors));
     json_object_set_new(er, "checkpoint", json_integer((json_int_t)metrics_counter_at(s->m_checkpoints, CK_FAILED)->v));
@@ -896,12 +898,10 @@ static void on_tick(uv_timer_t *h)
         bus_partition_info pi[256];
         uint32_t np = bus_partitions(s->bus, pi, 256);
         double lag = 0;
-        int paused = 0;
-        for (uint32_t i = 0; i < np; i++) {
+        int paused = bus_paused(s->bus);
+        for (uint32_t i = 0; i < np; i++)
             if (pi[i].lag > 0)
                 lag += (double)pi[i].lag;
-            paused |= pi[i].paused;
-        }
         metrics_set(metrics_gauge_at(s->m_lag, 0), lag);
         if (paused && !s->paused_since_ms)
             s->paused_since_ms = now;
