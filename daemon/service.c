@@ -69,6 +69,10 @@ typedef struct service {
         *m_latency, *m_in_flight, *m_lag, *m_threshold, *m_expected,
         *m_model_bytes, *m_uptime, *m_kafka_time, *m_consumer_errors;
     status_server *status;
+    status_provider prov;
+    /* Label values of dead_letters_total: every refusal reason, plus
+     * produce_failed (kept here: the registry borrows them). */
+    const char *reason_values[PACKET_REASON_COUNT + 2];
 
     uv_signal_t sig_term, sig_int, sig_hup, sig_usr1;
     uv_timer_t tick;
@@ -118,8 +122,6 @@ static void iso_time(uint64_t ms, char *buf, size_t len)
 
 /* ---- metrics ------------------------------------------------------------ */
 
-static const char *reason_values[PACKET_REASON_COUNT + 2];
-
 static int register_metrics(service *s, char *err, size_t len)
 {
     s->reg = metrics_new(NULL);
@@ -127,6 +129,7 @@ static int register_metrics(service *s, char *err, size_t len)
         snprintf(err, len, "out of memory");
         return -1;
     }
+    const char **reason_values = s->reason_values;
     uint32_t nr = 0;
     for (int code = -1; packet_reason_index(code) >= 0; code--)
         reason_values[nr++] = packet_reason_name(code);
@@ -679,7 +682,7 @@ static json_t *status_json(void *ctx)
     json_object_set_new(counts, "in_flight", json_integer(s->bus ? (json_int_t)bus_in_flight(s->bus) : 0));
     json_t *dl = json_object();
     for (uint32_t i = 0; i < metrics_series(s->m_dead); i++)
-        json_object_set_new(dl, reason_values[i], json_integer((json_int_t)metrics_counter_at(s->m_dead, i)->v));
+        json_object_set_new(dl, s->reason_values[i], json_integer((json_int_t)metrics_counter_at(s->m_dead, i)->v));
     json_object_set_new(counts, "dead_letters", dl);
     json_t *er = json_object();
     const bus_counters *bc = s->bus ? bus_get_counters(s->bus) : NULL;
@@ -1044,11 +1047,10 @@ int service_run(struct oddsky_config *cfg, log_sink *sink, const service_opts *o
         so.max_body_bytes = cfg->status.max_body_bytes;
         so.log_warning = status_warning;
         so.log_ctx = s;
-        static status_provider prov;
-        prov = (status_provider){.ctx = s, .status_json = status_json,
-                                 .healthy = healthy, .metrics_text = metrics_text,
-                                 .checkpoint_now = checkpoint_now};
-        s->status = status_server_start(&s->loop, &so, &prov, err, sizeof err);
+        s->prov = (status_provider){.ctx = s, .status_json = status_json,
+                                    .healthy = healthy, .metrics_text = metrics_text,
+                                    .checkpoint_now = checkpoint_now};
+        s->status = status_server_start(&s->loop, &so, &s->prov, err, sizeof err);
         if (!s->status) {
             log_error(&s->log, "status endpoint: %s", err);
             rc = EX_CONFIG;
