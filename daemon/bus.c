@@ -553,6 +553,17 @@ static int conf_set(rd_kafka_conf_t *c, const char *k, const char *v, char *err,
     return 0;
 }
 
+/* The pass-through properties of one client, as flattened key/value
+ * pairs. */
+static int conf_set_pairs(rd_kafka_conf_t *c, const char *const *kv, uint32_t n,
+                          char *err, size_t err_len)
+{
+    for (uint32_t i = 0; i < n; i++)
+        if (conf_set(c, kv[2 * i], kv[2 * i + 1], err, err_len))
+            return -EINVAL;
+    return 0;
+}
+
 static int make_pipe(int p[2])
 {
     if (pipe(p) < 0)
@@ -620,11 +631,10 @@ int bus_new(uv_loop_t *loop, const bus_opts *o, const bus_callbacks *cb,
         rd_kafka_conf_destroy(cc);
         goto fail;
     }
-    for (uint32_t i = 0; i < o->n_consumer_kv; i++)
-        if (conf_set(cc, o->consumer_kv[2 * i], o->consumer_kv[2 * i + 1], err, err_len)) {
-            rd_kafka_conf_destroy(cc);
-            goto fail;
-        }
+    if (conf_set_pairs(cc, o->consumer_kv, o->n_consumer_kv, err, err_len)) {
+        rd_kafka_conf_destroy(cc);
+        goto fail;
+    }
     /* Our own settings win over pass-through ones where correctness
      * depends on them. */
     conf_set(cc, "enable.auto.offset.store", "false", NULL, 0);
@@ -651,11 +661,10 @@ int bus_new(uv_loop_t *loop, const bus_opts *o, const bus_callbacks *cb,
         rd_kafka_conf_destroy(pc);
         goto fail;
     }
-    for (uint32_t i = 0; i < o->n_producer_kv; i++)
-        if (conf_set(pc, o->producer_kv[2 * i], o->producer_kv[2 * i + 1], err, err_len)) {
-            rd_kafka_conf_destroy(pc);
-            goto fail;
-        }
+    if (conf_set_pairs(pc, o->producer_kv, o->n_producer_kv, err, err_len)) {
+        rd_kafka_conf_destroy(pc);
+        goto fail;
+    }
     char tmo[32];
     size_t tmo_len = sizeof tmo;
     long timeout_ms = 300000;
