@@ -790,16 +790,6 @@ static void on_closed(uv_handle_t *h)
     (void)h;
 }
 
-static void on_bus_closed(void *arg)
-{
-    (void)arg;
-}
-
-static void on_status_closed(void *arg)
-{
-    (void)arg;
-}
-
 static void finish(service *s)
 {
     /* Everything in flight is delivered or the deadline passed. */
@@ -815,10 +805,10 @@ static void finish(service *s)
                        LOG_UINT("flags", pc->flags), LOG_UINT("learned", pc->learned),
                        LOG_UINT("rescored", pc->score_only)),
                 "stopped");
-    bus_close(s->bus, on_bus_closed, s);
+    bus_close(s->bus, NULL, NULL);
     s->bus = NULL;
     if (s->status) {
-        status_server_close(s->status, on_status_closed, s);
+        status_server_close(s->status, NULL, NULL);
         s->status = NULL;
     }
     uv_close((uv_handle_t *)&s->tick, on_closed);
