@@ -285,6 +285,46 @@ double series_slope(const double *t, const double *v, size_t n)
     return stv / stt;
 }
 
+/* Pooled within-band slope (the common slope of an ANCOVA, equal to the
+ * t coefficient of OLS v ~ t + band dummies):
+ *   slope = sum_b sum_{i in b} (t_i - tbar_b)(v_i - vbar_b)
+ *           / sum_b sum_{i in b} (t_i - tbar_b)^2,
+ * over bands b with n_b >= 2.  A one-point band would add 0 to both sums
+ * anyway; it is skipped explicitly so the rule reads as written.  Two
+ * passes: the band means first, then the centred sums. */
+double series_pooled_slope(const double *t, const double *v, const int *band,
+                           size_t n)
+{
+    size_t cnt[SERIES_POOL_MAX_BANDS] = {0};
+    double st[SERIES_POOL_MAX_BANDS] = {0}, sv[SERIES_POOL_MAX_BANDS] = {0};
+    for (size_t i = 0; i < n; i++) {
+        int b = band[i];
+        if (b < 0 || b >= SERIES_POOL_MAX_BANDS)
+            continue;
+        cnt[b]++;
+        st[b] += t[i];
+        sv[b] += v[i];
+    }
+    for (int b = 0; b < SERIES_POOL_MAX_BANDS; b++) {
+        if (cnt[b]) {
+            st[b] /= (double)cnt[b];
+            sv[b] /= (double)cnt[b];
+        }
+    }
+    double stt = 0.0, stv = 0.0;
+    for (size_t i = 0; i < n; i++) {
+        int b = band[i];
+        if (b < 0 || b >= SERIES_POOL_MAX_BANDS || cnt[b] < 2)
+            continue;
+        double dt = t[i] - st[b];
+        stt += dt * dt;
+        stv += dt * (v[i] - sv[b]);
+    }
+    if (!(stt > 0.0))
+        return NAN;
+    return stv / stt;
+}
+
 /* Steepest change between successive points, value units per day.
  * sign = -1: brightening (value falling), sign = +1: fading.  Pairs with
  * equal times are skipped; NaN when no pair has t_{i+1} > t_i. */

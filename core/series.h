@@ -86,6 +86,20 @@ double series_beyond_1sigma(const double *v, const double *e, size_t n);
 double series_mad(const double *v, size_t n, double *scratch);
 double series_latest_minus_mean(const double *v, size_t n);
 
+/* Bands series_pooled_slope() can tell apart: band ids 0..this-1. */
+#define SERIES_POOL_MAX_BANDS 64
+
+/* Pooled within-band (common) slope of v against t, the slope of the
+ * OLS fit v ~ t + one dummy per band (ANCOVA with a common slope):
+ * each band is centred on its own means, so constant offsets between
+ * bands do not enter.  band[i] is point i's band id; points whose id is
+ * outside 0..SERIES_POOL_MAX_BANDS-1 are ignored, and bands with fewer
+ * than 2 points contribute nothing.  Order does not matter.  NaN when no
+ * band has 2 points at distinct times (zero denominator).  Nothing is
+ * allocated. */
+double series_pooled_slope(const double *t, const double *v, const int *band,
+                           size_t n);
+
 /* Median of n values (numpy.median convention: mean of the two middle
  * values for even n).  Reorders a[]; NaN for n == 0. */
 double series_median_inplace(double *a, size_t n);

@@ -222,3 +222,63 @@ def test_rise_and_fade_skip_equal_times(core):
     # successive pairs with dt > 0: (0,1): -1/1 ; (2,3): +1/2
     assert close(stat(core, "rise_rate", t, v, np.ones(4)), 1.0)
     assert close(stat(core, "fade_rate", t, v, np.ones(4)), 0.5)
+
+
+def pooled_slope(core, t, v, band):
+    core.series_pooled_slope.restype = ctypes.c_double
+    core.series_pooled_slope.argtypes = [
+        ctypes.POINTER(ctypes.c_double),
+        ctypes.POINTER(ctypes.c_double),
+        ctypes.POINTER(ctypes.c_int),
+        ctypes.c_size_t,
+    ]
+    t = np.ascontiguousarray(t, dtype=np.float64)
+    v = np.ascontiguousarray(v, dtype=np.float64)
+    b = np.ascontiguousarray(band, dtype=np.intc)
+    return core.series_pooled_slope(
+        dptr(t), dptr(v), b.ctypes.data_as(ctypes.POINTER(ctypes.c_int)), len(v))
+
+
+def ancova_slope_ref(t, v, band):
+    # source: numpy.linalg.lstsq with band dummy columns (ANCOVA common
+    # slope): v ~ slope * t + sum_b c_b [band == b]; the t coefficient.
+    # Times are shifted by their mean first so the design is well
+    # conditioned (a shift only moves the intercepts).
+    bands = np.unique(band)
+    x = np.column_stack([t - t.mean()] + [(band == b).astype(float) for b in bands])
+    coef, *_ = np.linalg.lstsq(x, v, rcond=None)
+    return coef[0]
+
+
+def test_pooled_slope_matches_lstsq_with_band_dummies(core):
+    rng = np.random.default_rng(31)
+    offsets = np.array([0.0, 0.8, -0.5, 1.7, 0.3])  # colour offsets
+    for n, nb in ((6, 2), (25, 3), (120, 5), (400, 4)):
+        t = np.sort(rng.uniform(60000.0, 60060.0, n))
+        band = rng.integers(0, nb, n)
+        band[: nb] = np.arange(nb)  # every band present
+        v = 18.0 + offsets[band] + 0.02 * (t - t[0]) + rng.normal(0.0, 0.05, n)
+        ours = pooled_slope(core, t, v, band)
+        ref = ancova_slope_ref(t, v, band)
+        assert close(ours, ref), f"n={n} bands={nb}: ours {ours!r} ref {ref!r}"
+
+        # A band with a single point: its dummy fits it exactly in lstsq,
+        # so it must not change the result (ours skips it by rule).
+        t1 = np.append(t, 60030.0)
+        v1 = np.append(v, 5.0)
+        b1 = np.append(band, nb)
+        assert close(pooled_slope(core, t1, v1, b1), ref)
+        assert close(ancova_slope_ref(t1, v1, b1), ref)
+
+
+def test_pooled_slope_undefined_cases(core):
+    # definition in series.c: NaN when no band has 2 points at distinct
+    # times (the lstsq design would be rank deficient in t)
+    nan = np.isnan
+    assert nan(pooled_slope(core, [1.0, 2.0, 3.0], [1.0, 2.0, 3.0], [0, 1, 2]))
+    assert nan(pooled_slope(core, [1.0, 1.0, 3.0], [1.0, 2.0, 3.0], [0, 0, 1]))
+    assert nan(pooled_slope(core, np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.intc)))
+    # one band: the plain OLS slope (source: numpy.polyfit deg 1)
+    t = np.array([0.0, 1.0, 2.5, 4.0])
+    v = np.array([1.0, 1.3, 2.1, 2.2])
+    assert close(pooled_slope(core, t, v, [3, 3, 3, 3]), np.polyfit(t, v, 1)[0])
