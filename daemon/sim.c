@@ -32,30 +32,40 @@ static const char sim_schema_text[] =
     "ction on a difference image, with the earlier detections of the same s"
     "ource.\",\"fields\":[{\"name\":\"packet_id\",\"type\":\"long\",\"doc\""
     ":\"Unique per packet, increasing in emission order.\"},{\"name\":\"sou"
-    "rce\",\"type\":{\"type\":\"record\",\"name\":\"Source\",\"fields\":[{\""
-    "name\":\"id\",\"type\":\"long\",\"doc\":\"Stable identifier of the sou"
-    "rce across its packets.\"},{\"name\":\"ra_deg\",\"type\":\"double\",\""
-    "doc\":\"Right ascension, degrees (J2000).\"},{\"name\":\"dec_deg\",\"t"
-    "ype\":\"double\",\"doc\":\"Declination, degrees (J2000).\"}]}},{\"name"
-    "\":\"obs\",\"type\":{\"type\":\"record\",\"name\":\"Detection\",\"fiel"
-    "ds\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc\":\"Visit time, MJD "
-    "days.\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Filter: one "
-    "of u g r i z y.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\"Mag"
-    "nitude of the detection.\"},{\"name\":\"mag_err\",\"type\":\"double\","
-    "\"doc\":\"1-sigma magnitude error.\"},{\"name\":\"quality\",\"type\":\""
-    "double\",\"doc\":\"Detection quality score, 0 (junk) to 1 (clean).\"},"
-    "{\"name\":\"field\",\"type\":\"int\",\"doc\":\"Survey field of the vis"
-    "it.\"}]}},{\"name\":\"history\",\"doc\":\"Earlier detections of the sa"
-    "me source, oldest first (at most 64, none older than the history horiz"
-    "on).\",\"type\":{\"type\":\"array\",\"items\":{\"type\":\"record\",\"n"
-    "ame\":\"PastDetection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"doubl"
-    "e\"},{\"name\":\"band\",\"type\":\"string\"},{\"name\":\"mag\",\"type\""
-    ":\"double\"},{\"name\":\"mag_err\",\"type\":\"double\"}]}}},{\"name\":"
-    "\"truth\",\"doc\":\"Simulated population, for evaluation only: models "
-    "must not read it.\",\"type\":{\"type\":\"enum\",\"name\":\"Population\""
-    ",\"symbols\":[\"sn_thermo\",\"sn_cc\",\"periodic\",\"nuclear_drw\",\"f"
-    "lare\",\"moving\",\"artefact\",\"rare_fast_blue\",\"rare_fast_red\",\""
-    "rare_slow_riser\"]}}]}";
+    "rce\",\"type\":{\"type\":\"record\",\"name\":\"Source\",\"fields\":[{"
+    "\"name\":\"id\",\"type\":\"long\",\"doc\":\"Stable identifier of the s"
+    "ource across its packets.\"},{\"name\":\"ra_deg\",\"type\":\"double\","
+    "\"doc\":\"Right ascension, degrees (J2000).\"},{\"name\":\"dec_deg\","
+    "\"type\":\"double\",\"doc\":\"Declination, degrees (J2000).\"}]}},{\"n"
+    "ame\":\"obs\",\"type\":{\"type\":\"record\",\"name\":\"Detection\",\"f"
+    "ields\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc\":\"Visit time, M"
+    "JD days.\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Filter: o"
+    "ne of u g r i z y.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\""
+    "Magnitude of the detection.\"},{\"name\":\"mag_err\",\"type\":\"double"
+    "\",\"doc\":\"1-sigma magnitude error.\"},{\"name\":\"quality\",\"type"
+    "\":\"double\",\"doc\":\"Detection quality score, 0 (junk) to 1 (clean)"
+    ".\"},{\"name\":\"field\",\"type\":\"int\",\"doc\":\"Survey field of th"
+    "e visit.\"},{\"name\":\"mover_sep_arcsec\",\"type\":\"double\",\"doc\""
+    ":\"Separation from the predicted position of the nearest known moving "
+    "body, arcsec; 60 when none is within the 60 arcsec search radius.\"}]}"
+    "},{\"name\":\"history\",\"doc\":\"Earlier detections of the same sourc"
+    "e, oldest first (at most 64, none older than the history horizon).\","
+    "\"type\":{\"type\":\"array\",\"items\":{\"type\":\"record\",\"name\":"
+    "\"PastDetection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"double\"},{"
+    "\"name\":\"band\",\"type\":\"string\"},{\"name\":\"mag\",\"type\":\"do"
+    "uble\"},{\"name\":\"mag_err\",\"type\":\"double\"}]}}},{\"name\":\"pri"
+    "or_limit\",\"default\":null,\"doc\":\"The most recent earlier visit of"
+    " this position in which the source was not detected (none older than t"
+    "he history horizon); null when there is none.\",\"type\":[\"null\",{\""
+    "type\":\"record\",\"name\":\"Limit\",\"fields\":[{\"name\":\"mjd\",\"t"
+    "ype\":\"double\",\"doc\":\"Visit time, MJD days.\"},{\"name\":\"band\""
+    ",\"type\":\"string\",\"doc\":\"Filter of that visit.\"},{\"name\":\"ma"
+    "g\",\"type\":\"double\",\"doc\":\"5-sigma limiting magnitude of that v"
+    "isit.\"}]}]},{\"name\":\"truth\",\"doc\":\"Simulated population, for e"
+    "valuation only: models must not read it.\",\"type\":{\"type\":\"enum\""
+    ",\"name\":\"Population\",\"symbols\":[\"sn_thermo\",\"sn_cc\",\"period"
+    "ic\",\"nuclear_drw\",\"flare\",\"moving\",\"artefact\",\"rare_fast_blu"
+    "e\",\"rare_fast_red\",\"rare_slow_riser\"]}}]}";
 
 /* ---- the invented instrument ------------------------------------------ */
 
@@ -133,11 +143,20 @@ typedef struct hist_entry {
     uint8_t band;
 } hist_entry;
 
+/* A visit of a position without a detection: time, band, limit. */
+typedef struct nondet {
+    int64_t t_ud;
+    int32_t m5_q;   /* 1e-4 mag */
+    uint8_t band;
+    uint8_t valid;
+} nondet;
+
 typedef struct src {
     int64_t id;
     int64_t ra_q, dec_q;  /* 1e-6 degree */
     uint8_t pop;
     uint16_t hist_n, hist_head;
+    nondet nd;            /* latest visit that did not detect it */
     union {
         struct {
             double t0, t_peak;
@@ -163,6 +182,7 @@ typedef struct src {
 typedef struct field {
     double ra_deg, dec_deg, cos_dec;
     unsigned next_night;
+    nondet last;          /* the field's previous visit */
 } field;
 
 typedef struct visit {
@@ -453,6 +473,9 @@ static void spawn(sim *s, unsigned slot, double t, int initial)
     o->id = s->next_source_id++;
     o->hist_n = 0;
     o->hist_head = 0;
+    /* A new source was not there at the field's previous visit (at the
+     * start the survey has not looked yet). */
+    o->nd = s->fields[slot / s->p.burst].last;
     place_source(s, o, slot / s->p.burst);
     switch (o->pop) {
     case SIM_POP_PERIODIC: spawn_periodic(s, o); break;
@@ -664,6 +687,36 @@ static void fill_common(sim *s, const src *o, const visit *v, sim_packet *out)
     out->field = (int32_t)v->field;
     out->truth = (sim_pop)o->pop;
     out->n_hist = 0;
+    out->has_limit = o->nd.valid && o->nd.t_ud < v->t_ud &&
+                     v->t_ud - o->nd.t_ud <= s->horizon_ud;
+    out->limit_mjd = out->limit_mag = 0.0;
+    out->limit_band = 0;
+    if (out->has_limit) {
+        out->limit_mjd = (double)(s->start_q + o->nd.t_ud) / UD_PER_DAY;
+        out->limit_mag = (double)o->nd.m5_q / 1e4;
+        out->limit_band = o->nd.band;
+    }
+    /* Known moving bodies: 85% of the moving objects are known, their
+     * predicted positions off by a Rayleigh 0.7 arcsec; any other source
+     * lies near a known body by chance once in 500 (invented rates). */
+    double sep = SIM_MOVER_RADIUS, u = rng_uniform(&s->r);
+    if (o->pop == SIM_POP_MOVING ? u < 0.85 : u < 0.002) {
+        double w = rng_uniform(&s->r);
+        sep = o->pop == SIM_POP_MOVING ? 0.7 * sqrt(-2.0 * log1p(-w))
+                                       : SIM_MOVER_RADIUS * sqrt(w);
+        if (sep > SIM_MOVER_RADIUS)
+            sep = SIM_MOVER_RADIUS;
+    }
+    out->mover_sep_arcsec = (double)quant(sep, 1e4) / 1e4;
+}
+
+/* The visit did not detect the source in this slot. */
+static void missed(sim *s, src *o, const visit *v)
+{
+    o->nd.t_ud = v->t_ud;
+    o->nd.m5_q = (int32_t)quant(s->cur_m5, 1e4);
+    o->nd.band = v->band;
+    o->nd.valid = 1;
 }
 
 static void set_phot(sim_packet *out, double mag, double err, double quality)
@@ -739,6 +792,7 @@ static int emit_artefact(sim *s, src *o, unsigned slot, const visit *v,
      * large error, a cosmic-ray-like hit with an error too small for its
      * brightness, a ghost of a bright star. */
     o->id = s->next_source_id++;
+    o->nd = s->fields[slot / s->p.burst].last;
     place_source(s, o, slot / s->p.burst);
     fill_common(s, o, v, out);
     double m5 = s->cur_m5, u = rng_uniform(&s->r), mag, err, q;
@@ -772,6 +826,7 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
     case SIM_POP_MOVING: {
         /* A new body at every visit: never linked, so no history. */
         o->id = s->next_source_id++;
+        o->nd = s->fields[slot / s->p.burst].last;
         place_source(s, o, slot / s->p.burst);
         float off[SIM_NBANDS];
         stellar_offsets(0.45 + 0.08 * rng_normal(&s->r), off);
@@ -828,8 +883,10 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
         break;
     }
     }
-    if (!measure(s, flux, out))
+    if (!measure(s, flux, out)) {
+        missed(s, o, v);
         return 0;
+    }
     fill_common(s, o, v, out);
     copy_history(s, slot, o, v->t_ud, out);
     push_history(s, slot, o, v->t_ud, out);
@@ -855,6 +912,12 @@ int sim_next(sim *s, sim_packet *out)
             if (emit_slot(s, slot, v, out))
                 return 0;
         }
+        /* Later packets of this field see this visit as its previous one. */
+        nondet *last = &s->fields[v->field].last;
+        last->t_ud = v->t_ud;
+        last->m5_q = (int32_t)quant(s->cur_m5, 1e4);
+        last->band = v->band;
+        last->valid = 1;
         s->vi++;
         s->si = 0;
     }
@@ -941,7 +1004,7 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
     if (p->n_hist > SIM_HISTORY_CAP || !band_ok(p->band) ||
         (int)p->truth < 0 || p->truth >= SIM_POP_COUNT_)
         return -1;
-    size_t need = 400 + (size_t)p->n_hist * 110;
+    size_t need = 560 + (size_t)p->n_hist * 110;
     if (cap < need)
         return -1;
     char *o = buf;
@@ -965,6 +1028,8 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
     o = put_dbl(o, p->quality, 4, 1e4);
     o = put_lit(o, ",\"field\":");
     o = put_int(o, p->field);
+    o = put_lit(o, ",\"mover_sep_arcsec\":");
+    o = put_dbl(o, p->mover_sep_arcsec, 4, 1e4);
     o = put_lit(o, "},\"history\":[");
     for (unsigned i = 0; i < p->n_hist; i++) {
         const sim_point *h = &p->hist[i];
@@ -980,7 +1045,19 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
         o = put_dbl(o, h->mag_err, 4, 1e4);
         *o++ = '}';
     }
-    o = put_lit(o, "],\"truth\":\"");
+    if (p->has_limit) {
+        if (!band_ok(p->limit_band))
+            return -1;
+        o = put_lit(o, "],\"prior_limit\":{\"mjd\":");
+        o = put_dbl(o, p->limit_mjd, 6, 1e6);
+        o = put_lit(o, ",\"band\":\"");
+        *o++ = band_letter[p->limit_band][0];
+        o = put_lit(o, "\",\"mag\":");
+        o = put_dbl(o, p->limit_mag, 4, 1e4);
+        o = put_lit(o, "},\"truth\":\"");
+    } else {
+        o = put_lit(o, "],\"prior_limit\":null,\"truth\":\"");
+    }
     o = put_lit(o, sim_pop_name(p->truth));
     o = put_lit(o, "\"}");
     return (int)(o - buf);
@@ -1029,7 +1106,7 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
     if (p->n_hist > SIM_HISTORY_CAP || !band_ok(p->band) ||
         (int)p->truth < 0 || p->truth >= SIM_POP_COUNT_)
         return -1;
-    size_t need = 128 + (size_t)p->n_hist * 26;
+    size_t need = 160 + (size_t)p->n_hist * 26;
     if (cap < need)
         return -1;
     uint8_t *o = buf;
@@ -1043,6 +1120,7 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
     o = av_double(o, p->mag_err);
     o = av_double(o, p->quality);
     o = av_long(o, p->field);
+    o = av_double(o, p->mover_sep_arcsec);
     if (p->n_hist) {
         o = av_long(o, (int64_t)p->n_hist);
         for (unsigned i = 0; i < p->n_hist; i++) {
@@ -1056,6 +1134,16 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
         }
     }
     o = av_long(o, 0);
+    if (p->has_limit) {  /* union ["null", Limit]: branch index, then the record */
+        if (!band_ok(p->limit_band))
+            return -1;
+        o = av_long(o, 1);
+        o = av_double(o, p->limit_mjd);
+        o = av_band(o, p->limit_band);
+        o = av_double(o, p->limit_mag);
+    } else {
+        o = av_long(o, 0);
+    }
     o = av_long(o, (int64_t)p->truth);
     return (int)(o - buf);
 }

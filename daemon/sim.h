@@ -18,7 +18,12 @@
  * a damped random walk (the exact Ornstein-Uhlenbeck update, Kelly,
  * Bechtold & Siemiginowska 2009); flare stars a quiescent star plus the
  * flare template of Davenport et al. 2014; moving objects and imaging
- * artefacts never repeat, so they carry no history.  Photometry is
+ * artefacts never repeat, so they carry no history.  Each packet also
+ * carries the latest earlier visit of its position that did not detect
+ * the source (its time, band and limiting magnitude: a new source's is
+ * the field's previous visit) and the separation from the nearest known
+ * moving body (most moving objects are known bodies; other sources
+ * rarely fall near one by chance).  Photometry is
  * sky-limited: the flux error is constant for a visit, set by its 5-sigma
  * limiting magnitude, and a packet exists only for a detection at
  * SNR >= 5.
@@ -44,6 +49,7 @@
 
 #define SIM_HISTORY_CAP 64u  /* hard bound on history_max */
 #define SIM_NBANDS 6u
+#define SIM_MOVER_RADIUS 60.0  /* arcsec searched for a known moving body */
 
 /* X(enum suffix, name in the schema's Population enum) */
 #define SIM_POP_MAP(X)                                                        \
@@ -104,9 +110,16 @@ typedef struct sim_packet {
     double mag, mag_err;
     double quality;      /* 0 (junk) .. 1 (clean) */
     int32_t field;
+    double mover_sep_arcsec; /* nearest known moving body, SIM_MOVER_RADIUS if none */
     sim_pop truth;
     unsigned n_hist;
     sim_point hist[SIM_HISTORY_CAP];
+    /* The latest earlier visit of the position without a detection of the
+     * source, within the history horizon (has_limit 0: none, null in the
+     * encodings). */
+    int has_limit;
+    double limit_mjd, limit_mag;  /* limit_mag: that visit's 5-sigma limit */
+    uint8_t limit_band;
 } sim_packet;
 
 typedef struct sim sim;

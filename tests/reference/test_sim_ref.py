@@ -105,6 +105,17 @@ def test_stream_properties(records):
         assert 0.0 <= r["obs"]["quality"] <= 1.0
         if r["truth"] in ("moving", "artefact"):
             assert h == []
+        # Schema docs of obs.mover_sep_arcsec and prior_limit: a separation
+        # out to the 60 arcsec search radius; the limit an earlier visit
+        # within the 30-day horizon at no time of a detection (detections
+        # are at SNR >= 5, so a detection's magnitude would be brighter
+        # than the limit of its own visit).
+        assert 0.0 <= r["obs"]["mover_sep_arcsec"] <= 60.0
+        lim = r["prior_limit"]
+        if lim is not None:
+            assert r["obs"]["mjd"] - 30.0 - 1e-9 <= lim["mjd"] < r["obs"]["mjd"]
+            assert lim["band"] in "ugrizy" and len(lim["band"]) == 1
+            assert lim["mjd"] not in times
     pops = Counter(r["truth"] for r in recs)
     # Every common population shows up in 2000 packets.
     for p in ("sn_thermo", "sn_cc", "periodic", "nuclear_drw", "flare", "moving", "artefact"):

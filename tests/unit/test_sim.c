@@ -240,7 +240,7 @@ static void check_order_and_history(unsigned hmax)
     assert_non_null(seen);
     double prev_mjd = -1;
     int64_t prev_id = 0;
-    long linked = 0, with_hist = 0;
+    long linked = 0, with_hist = 0, with_limit = 0;
     unsigned max_hist = 0;
     for (int i = 0; i < 200000; i++) {
         sim_next(s, &p);
@@ -265,6 +265,18 @@ static void check_order_and_history(unsigned hmax)
             if (k)
                 assert_true(p.hist[k].mjd > p.hist[k - 1].mjd);
         }
+        /* The prior limit is an earlier visit within the horizon that did
+         * not detect the source, so no history point shares its time; its
+         * depth is a visit limit (band limits 21.2..23.2, +-0.6 seeing). */
+        if (p.has_limit) {
+            assert_true(p.limit_mjd < p.mjd && p.limit_mjd >= p.mjd - 30.0 - 1e-9);
+            assert_true(p.limit_band < SIM_NBANDS);
+            assert_true(p.limit_mag >= 20.6 - 1e-9 && p.limit_mag <= 23.8 + 1e-9);
+            for (unsigned k = 0; k < p.n_hist; k++)
+                assert_true(p.hist[k].mjd != p.limit_mjd);
+            with_limit++;
+        }
+        assert_true(p.mover_sep_arcsec >= 0.0 && p.mover_sep_arcsec <= SIM_MOVER_RADIUS);
         /* The newest history point is this source's previous packet. */
         assert_true(p.source_id > 0 && p.source_id < id_cap);
         last_seen *ls = &seen[p.source_id];
@@ -285,6 +297,11 @@ static void check_order_and_history(unsigned hmax)
         ls->band = p.band;
     }
     assert_true(with_hist > 100000);
+    /* Moving objects and artefacts (23% of packets) are new at every
+     * visit, so past the first visits of their field they all have a
+     * prior limit; so do transients that were below the limit on an
+     * earlier visit (measured about 36% of all packets here). */
+    assert_true(with_limit > 46000);
     /* A 30-day horizon holds about 15 visits of a field: a small bound is
      * reached, a large one is not. */
     if (hmax <= 10)
@@ -435,6 +452,17 @@ static void check_json(const sim_packet *p, const char *txt, int n)
     assert_true(json_real_value(json_object_get(obs, "quality")) == p->quality);
     assert_string_equal(json_string_value(json_object_get(obs, "band")), sim_band_name(p->band));
     assert_int_equal(json_integer_value(json_object_get(obs, "field")), p->field);
+    assert_true(json_real_value(json_object_get(obs, "mover_sep_arcsec")) == p->mover_sep_arcsec);
+    json_t *lim = json_object_get(o, "prior_limit");
+    assert_non_null(lim);  /* present, null when there is none */
+    if (p->has_limit) {
+        assert_true(json_real_value(json_object_get(lim, "mjd")) == p->limit_mjd);
+        assert_true(json_real_value(json_object_get(lim, "mag")) == p->limit_mag);
+        assert_string_equal(json_string_value(json_object_get(lim, "band")),
+                            sim_band_name(p->limit_band));
+    } else {
+        assert_true(json_is_null(lim));
+    }
     assert_string_equal(json_string_value(json_object_get(o, "truth")), sim_pop_name(p->truth));
     json_t *h = json_object_get(o, "history");
     assert_true(json_is_array(h));
@@ -497,6 +525,18 @@ static void check_avro_value(const sim_packet *p, avro_value_t *v)
     assert_int_equal(avro_value_get_by_name(&obs, "field", &fld, NULL), 0);
     assert_int_equal(avro_value_get_int(&fld, &fi), 0);
     assert_int_equal(fi, p->field);
+    assert_true(rec_double(&obs, "mover_sep_arcsec") == p->mover_sep_arcsec);
+    avro_value_t lim, branch;
+    int disc = -1;
+    assert_int_equal(avro_value_get_by_name(v, "prior_limit", &lim, NULL), 0);
+    assert_int_equal(avro_value_get_discriminant(&lim, &disc), 0);
+    assert_int_equal(disc, p->has_limit ? 1 : 0);
+    if (p->has_limit) {
+        assert_int_equal(avro_value_get_current_branch(&lim, &branch), 0);
+        assert_true(rec_double(&branch, "mjd") == p->limit_mjd);
+        assert_true(rec_double(&branch, "mag") == p->limit_mag);
+        rec_band(&branch, p->limit_band);
+    }
     assert_int_equal(avro_value_get_by_name(v, "history", &hist, NULL), 0);
     size_t n = 0;
     assert_int_equal(avro_value_get_size(&hist, &n), 0);
