@@ -12,6 +12,12 @@
  * compute (common: transforms, series statistics over the time-sorted
  * points, colors, diffs and ratios).  All buffers live in featmap_scratch,
  * sized from history.max_points when it is created.
+ *
+ * Bands are interned to small indexes: the bands the map names get
+ * 0..n_bands-1 when it is built; any other band text met in a packet gets
+ * the next free index after those, in a per-packet table in the scratch
+ * (so band-pooled statistics and the colour gradient can tell unnamed
+ * bands apart).  Every index stays below SERIES_POOL_MAX_BANDS.
  */
 #include "featmap.h"
 
@@ -28,6 +34,11 @@
 
 #define FM_PATH_TEXT_MAX 256u
 #define FM_BAND_MAX 32u
+/* Per-packet bands beyond those the map names (see the opening note). */
+#define FM_XBANDS (SERIES_POOL_MAX_BANDS - FEATMAP_MAX_BANDS)
+
+_Static_assert(FEATMAP_MAX_BANDS < SERIES_POOL_MAX_BANDS,
+               "band indexes must fit series_pooled_slope");
 
 enum { K_FIELD, K_SERIES, K_COLOR, K_DIFF, K_RATIO };
 enum { TR_NONE, TR_LOG10, TR_ASINH, TR_NEGATE };
@@ -43,7 +54,9 @@ enum {
     SLOT_FIXED_
 };
 enum { EL_T, EL_V, EL_E, EL_B, EL_COUNT_ };
-#define FM_SLOTS (SLOT_FIXED_ + 2u * MODEL_MAX_DIM)
+/* Each feature j owns three root slots from SLOT_FIXED_ + 3j: the field,
+ * its error and its "minus" path. */
+#define FM_SLOTS (SLOT_FIXED_ + 3u * MODEL_MAX_DIM)
 
 /* Status of one raw read. */
 enum { RAW_MISSING = 0, RAW_OK = 1, RAW_TYPE = 2 };
@@ -60,13 +73,18 @@ typedef struct fm_feature {
     int kind;
     int transform;
     int slot, err_slot;       /* K_FIELD: root slots, err_slot -1 = none */
+    int minus_slot;           /* K_FIELD: root slot of "minus", -1 = none */
     int stat;                 /* K_SERIES */
     int band;                 /* K_SERIES: band index, -1 = all */
+    int pool_bands;           /* K_SERIES: centre each band on its mean */
     int include_current;      /* K_SERIES, K_COLOR */
     uint32_t min_points;      /* K_SERIES */
-    int band_a, band_b;       /* K_COLOR */
-    int mode_mean;            /* K_COLOR */
-    double window_days;       /* K_COLOR mean */
+    int band_a, band_b;       /* K_COLOR pair */
+    int mode_mean;            /* K_COLOR pair */
+    int gradient;             /* K_COLOR: "color": "gradient" */
+    double window_days;       /* K_COLOR mean and gradient */
+    /* K_COLOR gradient: microns by band index, NaN = not in the map */
+    double wavelength_um[FEATMAP_MAX_BANDS];
     int ref_a, ref_b;         /* K_DIFF, K_RATIO: earlier feature indexes */
 } fm_feature;
 
@@ -106,7 +124,7 @@ struct featmap_plan {
 
 typedef struct fm_point {
     double t, v, e;
-    int32_t band;  /* index into fm->bands, -1 = other / none */
+    int32_t band;  /* interned band (opening note), -1 = none / no room */
     int32_t cur;   /* 1 = the current detection */
 } fm_point;
 
@@ -115,10 +133,13 @@ struct featmap_scratch {
     size_t n;
     fm_point *pts, *tmp;
     double *t, *v, *e, *work;
+    int *b;               /* band of each selected point (pool_bands) */
     double raw[FM_SLOTS];
     uint8_t raw_st[FM_SLOTS];
     uint32_t type_errors;
     int truncated;
+    uint32_t n_xbands;    /* this packet's bands the map does not name */
+    char xbands[FM_XBANDS][FM_BAND_MAX];
 };
 
 /* ------------------------------------------------------------------ */
@@ -257,10 +278,67 @@ static int earlier_feature(const json_t *features, size_t j, const char *s)
     return -1;
 }
 
-static void vfeature(vctx *v, const json_t *features, size_t j,
-                     int have_points, int have_bands, int have_current,
-                     uint32_t max_points)
+/* What the map's history and current detection provide, for the
+ * feature checks. */
+typedef struct vshape {
+    int have_points;    /* history with path, time and value */
+    int have_bands;     /* history.band or current.band */
+    int have_hist_band; /* history.band */
+    int have_cur_band;  /* current.band */
+    int have_current;   /* current with time and value */
+    uint32_t max_points;
+} vshape;
+
+/* The colour gradient's own rules ("color": "gradient"). */
+static void vgradient(vctx *v, const json_t *f, const char *base,
+                      const vshape *sh)
 {
+    char path[128];
+    snprintf(path, sizeof path, "%s.color", base);
+    if (!sh->have_current || !sh->have_cur_band)
+        verr(v, path, "\"gradient\" needs featmap.current with current.band "
+                      "to be configured");
+    if (!sh->have_points || !sh->have_hist_band)
+        verr(v, path, "\"gradient\" needs featmap.history with history.band "
+                      "to be configured");
+    snprintf(path, sizeof path, "%s.mode", base);
+    if (json_object_get(f, "mode"))
+        verr(v, path, "applies only to the two-band form (\"color\": [a, b])");
+    const json_t *ic = json_object_get(f, "include_current");
+    snprintf(path, sizeof path, "%s.include_current", base);
+    if (ic && !json_is_true(ic))
+        verr(v, path, "must be true for \"gradient\" (it always uses the "
+                      "current detection)");
+    const json_t *wl = json_object_get(f, "wavelength_um");
+    snprintf(path, sizeof path, "%s.wavelength_um", base);
+    if (!wl) {
+        verr(v, path, "required for \"gradient\"");
+        return;
+    }
+    if (!json_is_object(wl) || json_object_size(wl) == 0) {
+        verr(v, path, "must be a non-empty object of band: microns");
+        return;
+    }
+    const char *key;
+    const json_t *val;
+    json_object_foreach((json_t *)wl, key, val) {
+        char p2[200];
+        snprintf(p2, sizeof p2, "%s.%.64s", path, key);
+        size_t len = strlen(key);
+        if (len == 0 || len >= FM_BAND_MAX || !strcmp(key, "all"))
+            verr(v, p2, "must be a band name (1-31 bytes, not \"all\")");
+        if (!json_is_number(val) || !(json_number_value(val) > 0.0) ||
+            !isfinite(json_number_value(val)))
+            verr(v, p2, "must be a finite number > 0 (microns)");
+    }
+}
+
+static void vfeature(vctx *v, const json_t *features, size_t j,
+                     const vshape *sh)
+{
+    int have_points = sh->have_points, have_bands = sh->have_bands;
+    int have_current = sh->have_current;
+    uint32_t max_points = sh->max_points;
     char base[64], path[128];
     const json_t *f = json_array_get(features, j);
     snprintf(base, sizeof base, "featmap.features[%zu]", j);
@@ -294,10 +372,11 @@ static void vfeature(vctx *v, const json_t *features, size_t j,
 
     if (kind == K_FIELD) {
         static const char *const allowed[] = {"name", "field", "err",
-                                              "transform", NULL};
+                                              "minus", "transform", NULL};
         vunknown(v, f, base, allowed);
         vpath(v, f, "field", base, 1);
         vpath(v, f, "err", base, 0);
+        vpath(v, f, "minus", base, 0);
         const json_t *tr = json_object_get(f, "transform");
         snprintf(path, sizeof path, "%s.transform", base);
         if (tr && (!json_is_string(tr) ||
@@ -306,7 +385,8 @@ static void vfeature(vctx *v, const json_t *features, size_t j,
     } else if (kind == K_SERIES) {
         static const char *const allowed[] = {"name", "series", "band",
                                               "include_current",
-                                              "min_points", NULL};
+                                              "min_points", "pool_bands",
+                                              NULL};
         vunknown(v, f, base, allowed);
         const json_t *st = json_object_get(f, "series");
         snprintf(path, sizeof path, "%s.series", base);
@@ -328,6 +408,16 @@ static void vfeature(vctx *v, const json_t *features, size_t j,
                  !have_bands)
             verr(v, path, "a single band needs history.band (or "
                           "current.band) to be configured");
+        const json_t *pool = json_object_get(f, "pool_bands");
+        snprintf(path, sizeof path, "%s.pool_bands", base);
+        if (pool && !json_is_boolean(pool))
+            verr(v, path, "must be true or false");
+        else if (json_is_true(pool) && band_ok(band) &&
+                 strcmp(json_string_value(band), "all") != 0)
+            verr(v, path, "pool_bands needs band \"all\"");
+        else if (json_is_true(pool) && !have_bands)
+            verr(v, path, "needs history.band (or current.band) to be "
+                          "configured");
         const json_t *ic = json_object_get(f, "include_current");
         snprintf(path, sizeof path, "%s.include_current", base);
         if (ic && !json_is_boolean(ic))
@@ -352,13 +442,27 @@ static void vfeature(vctx *v, const json_t *features, size_t j,
     } else if (kind == K_COLOR) {
         static const char *const allowed[] = {"name", "color", "mode",
                                               "window_days",
-                                              "include_current", NULL};
+                                              "include_current",
+                                              "wavelength_um", NULL};
         vunknown(v, f, base, allowed);
         const json_t *c = json_object_get(f, "color");
+        const json_t *w = json_object_get(f, "window_days");
+        if (json_is_string(c) && !strcmp(json_string_value(c), "gradient")) {
+            vgradient(v, f, base, sh);
+            snprintf(path, sizeof path, "%s.window_days", base);
+            if (w && (!json_is_number(w) || !(json_number_value(w) > 0.0) ||
+                      !isfinite(json_number_value(w))))
+                verr(v, path, "must be a number > 0");
+            return;
+        }
+        snprintf(path, sizeof path, "%s.wavelength_um", base);
+        if (json_object_get(f, "wavelength_um"))
+            verr(v, path, "only for \"color\": \"gradient\"");
         snprintf(path, sizeof path, "%s.color", base);
         if (!json_is_array(c) || json_array_size(c) != 2 ||
             !band_ok(json_array_get(c, 0)) || !band_ok(json_array_get(c, 1)))
-            verr(v, path, "must be an array of two band names");
+            verr(v, path, "must be an array of two band names, or "
+                          "\"gradient\"");
         else if (strcmp(json_string_value(json_array_get(c, 0)),
                         json_string_value(json_array_get(c, 1))) == 0)
             verr(v, path, "must name two different bands");
@@ -374,7 +478,6 @@ static void vfeature(vctx *v, const json_t *features, size_t j,
                      (strcmp(json_string_value(mode), "latest") &&
                       strcmp(json_string_value(mode), "mean"))))
             verr(v, path, "must be one of: latest mean");
-        const json_t *w = json_object_get(f, "window_days");
         snprintf(path, sizeof path, "%s.window_days", base);
         if (w && (!json_is_number(w) || !(json_number_value(w) > 0.0) ||
                   !isfinite(json_number_value(w))))
@@ -429,8 +532,7 @@ int featmap_validate(const json_t *spec,
     vpath(&v, spec, "source", "featmap", 0);
     vpath(&v, spec, "time", "featmap", 0);
 
-    int have_points = 0, have_bands = 0, have_current = 0;
-    uint32_t max_points = FEATMAP_MAX_POINTS_DEFAULT;
+    vshape sh = {0, 0, 0, 0, 0, FEATMAP_MAX_POINTS_DEFAULT};
     const json_t *h = json_object_get(spec, "history");
     if (h) {
         if (!json_is_object(h)) {
@@ -445,8 +547,8 @@ int featmap_validate(const json_t *spec,
             ok &= vpath(&v, h, "value", "featmap.history", 1);
             vpath(&v, h, "err", "featmap.history", 0);
             if (vpath(&v, h, "band", "featmap.history", 0))
-                have_bands = 1;
-            have_points = ok;
+                sh.have_bands = sh.have_hist_band = 1;
+            sh.have_points = ok;
             const json_t *mp = json_object_get(h, "max_points");
             if (mp) {
                 if (!json_is_integer(mp) || json_integer_value(mp) < 1 ||
@@ -455,7 +557,7 @@ int featmap_validate(const json_t *spec,
                          "must be an integer between 1 and %u",
                          FEATMAP_MAX_POINTS_LIMIT);
                 else
-                    max_points = (uint32_t)json_integer_value(mp);
+                    sh.max_points = (uint32_t)json_integer_value(mp);
             }
         }
     }
@@ -471,8 +573,8 @@ int featmap_validate(const json_t *spec,
             ok &= vpath(&v, c, "value", "featmap.current", 1);
             vpath(&v, c, "err", "featmap.current", 0);
             if (vpath(&v, c, "band", "featmap.current", 0))
-                have_bands = 1;
-            have_current = ok;
+                sh.have_bands = sh.have_cur_band = 1;
+            sh.have_current = ok;
         }
     }
 
@@ -486,30 +588,41 @@ int featmap_validate(const json_t *spec,
              MODEL_MAX_DIM, json_array_size(fs));
     } else {
         for (size_t j = 0; j < json_array_size(fs); j++)
-            vfeature(&v, fs, j, have_points, have_bands, have_current,
-                     max_points);
-        /* distinct bands */
+            vfeature(&v, fs, j, &sh);
+        /* distinct bands: series bands, color pairs, gradient tables */
         char bands[FEATMAP_MAX_BANDS + 1][FM_BAND_MAX];
         uint32_t nb = 0;
         for (size_t j = 0; j < json_array_size(fs); j++) {
             const json_t *f = json_array_get(fs, j);
-            const json_t *list[2] = {json_object_get(f, "band"), NULL};
+            const char *list[2 + FEATMAP_MAX_BANDS + 1];
+            size_t nl = 0;
+            const json_t *band = json_object_get(f, "band");
+            if (band_ok(band))
+                list[nl++] = json_string_value(band);
             const json_t *col = json_object_get(f, "color");
-            if (json_is_array(col)) {
-                list[0] = json_array_get(col, 0);
-                list[1] = json_array_get(col, 1);
+            for (size_t i = 0; json_is_array(col) && i < 2; i++)
+                if (band_ok(json_array_get(col, i)))
+                    list[nl++] = json_string_value(json_array_get(col, i));
+            const json_t *wl = json_object_get(f, "wavelength_um");
+            const char *key;
+            const json_t *val;
+            if (json_is_object(wl) && json_is_string(col)) {
+                json_object_foreach((json_t *)wl, key, val) {
+                    if (nl == sizeof list / sizeof list[0])
+                        break;
+                    if (strlen(key) > 0 && strlen(key) < FM_BAND_MAX)
+                        list[nl++] = key;
+                }
             }
-            for (int i = 0; i < 2; i++) {
-                if (!band_ok(list[i]) ||
-                    !strcmp(json_string_value(list[i]), "all"))
+            for (size_t i = 0; i < nl; i++) {
+                if (!strcmp(list[i], "all"))
                     continue;
                 uint32_t b;
                 for (b = 0; b < nb; b++)
-                    if (!strcmp(bands[b], json_string_value(list[i])))
+                    if (!strcmp(bands[b], list[i]))
                         break;
                 if (b == nb && nb <= FEATMAP_MAX_BANDS)
-                    snprintf(bands[nb++], FM_BAND_MAX, "%s",
-                             json_string_value(list[i]));
+                    snprintf(bands[nb++], FM_BAND_MAX, "%s", list[i]);
             }
         }
         if (nb > FEATMAP_MAX_BANDS)
@@ -607,18 +720,22 @@ featmap *featmap_new(const json_t *spec, char *err, size_t err_len)
         snprintf(ft->name, sizeof ft->name, "%s",
                  json_string_value(json_object_get(f, "name")));
         fm->names[j] = ft->name;
-        ft->slot = ft->err_slot = -1;
+        ft->slot = ft->err_slot = ft->minus_slot = -1;
         ft->band = ft->band_a = ft->band_b = -1;
         ft->ref_a = ft->ref_b = -1;
         ft->include_current = json_is_true(json_object_get(f, "include_current"));
         const json_t *x;
         if ((x = json_object_get(f, "field"))) {
             ft->kind = K_FIELD;
-            ft->slot = (int)(SLOT_FIXED_ + 2 * j);
+            ft->slot = (int)(SLOT_FIXED_ + 3 * j);
             path_set(&fm->slot[ft->slot], x);
             if (json_object_get(f, "err")) {
                 ft->err_slot = ft->slot + 1;
                 path_set(&fm->slot[ft->err_slot], json_object_get(f, "err"));
+            }
+            if (json_object_get(f, "minus")) {
+                ft->minus_slot = ft->slot + 2;
+                path_set(&fm->slot[ft->minus_slot], json_object_get(f, "minus"));
             }
             const json_t *tr = json_object_get(f, "transform");
             ft->transform = tr ? transform_from_name(json_string_value(tr))
@@ -634,7 +751,20 @@ featmap *featmap_new(const json_t *spec, char *err, size_t err_len)
             const json_t *mp = json_object_get(f, "min_points");
             if (mp)
                 ft->min_points = (uint32_t)json_integer_value(mp);
-        } else if ((x = json_object_get(f, "color"))) {
+            ft->pool_bands = json_is_true(json_object_get(f, "pool_bands"));
+        } else if ((x = json_object_get(f, "color")) && json_is_string(x)) {
+            ft->kind = K_COLOR;
+            ft->gradient = 1;
+            fm->needs_points = 1;
+            for (uint32_t b = 0; b < FEATMAP_MAX_BANDS; b++)
+                ft->wavelength_um[b] = NAN;
+            const char *key;
+            const json_t *val;
+            json_object_foreach(json_object_get(f, "wavelength_um"), key, val)
+                ft->wavelength_um[band_index(fm, key)] = json_number_value(val);
+            const json_t *w = json_object_get(f, "window_days");
+            ft->window_days = w ? json_number_value(w) : 1.0;
+        } else if (x) {
             ft->kind = K_COLOR;
             fm->needs_points = 1;
             ft->band_a = band_index(fm, json_string_value(json_array_get(x, 0)));
@@ -845,7 +975,8 @@ featmap_scratch *featmap_scratch_new(const featmap *fm)
     s->v = calloc(s->cap, sizeof *s->v);
     s->e = calloc(s->cap, sizeof *s->e);
     s->work = calloc(s->cap, sizeof *s->work);
-    if (!s->pts || !s->tmp || !s->t || !s->v || !s->e || !s->work) {
+    s->b = calloc(s->cap, sizeof *s->b);
+    if (!s->pts || !s->tmp || !s->t || !s->v || !s->e || !s->work || !s->b) {
         featmap_scratch_free(s);
         return NULL;
     }
@@ -862,6 +993,7 @@ void featmap_scratch_free(featmap_scratch *s)
     free(s->v);
     free(s->e);
     free(s->work);
+    free(s->b);
     free(s);
 }
 
@@ -1052,12 +1184,20 @@ static int js_text(const json_t *x, char *buf, size_t cap)
 /* ------------------------------------------------------------------ */
 /* common                                                              */
 
-static int band_lookup(const featmap *fm, const char *s)
+/* Interned index of band text txt: the map's own bands first, then this
+ * packet's table of other bands (grown here; -1 once it is full). */
+static int band_lookup(const featmap *fm, featmap_scratch *s, const char *txt)
 {
     for (uint32_t b = 0; b < fm->n_bands; b++)
-        if (!strcmp(fm->bands[b], s))
+        if (!strcmp(fm->bands[b], txt))
             return (int)b;
-    return -1;
+    for (uint32_t k = 0; k < s->n_xbands; k++)
+        if (!strcmp(s->xbands[k], txt))
+            return (int)(fm->n_bands + k);
+    if (s->n_xbands == FM_XBANDS)
+        return -1;
+    snprintf(s->xbands[s->n_xbands], FM_BAND_MAX, "%s", txt);
+    return (int)(fm->n_bands + s->n_xbands++);
 }
 
 static void note_raw(featmap_scratch *s, uint32_t slot, int st, double x)
@@ -1089,6 +1229,7 @@ static void begin(featmap_scratch *s)
     s->n = 0;
     s->type_errors = 0;
     s->truncated = 0;
+    s->n_xbands = 0;
 }
 
 /* Stable bottom-up merge sort of pts by time. */
@@ -1118,8 +1259,11 @@ static void sort_points(featmap_scratch *s)
         memcpy(s->pts, a, n * sizeof *a);
 }
 
+/* Copy the points a series uses into s->t, v, e and b, in time order.
+ * With pooling, points without a band are left out (they cannot be
+ * centred on a band mean). */
 static size_t select_points(featmap_scratch *s, int band, int with_cur,
-                            int need_err)
+                            int need_err, int pool)
 {
     size_t m = 0;
     for (size_t i = 0; i < s->n; i++) {
@@ -1130,12 +1274,81 @@ static size_t select_points(featmap_scratch *s, int band, int with_cur,
             continue;
         if (need_err && !(p->e > 0.0))
             continue;
+        if (pool && p->band < 0)
+            continue;
         s->t[m] = p->t;
         s->v[m] = p->v;
         s->e[m] = p->e;
+        s->b[m] = p->band;
         m++;
     }
     return m;
+}
+
+/* pool_bands: replace each selected value by v_i - vbar_band(i) and keep
+ * only the bands with at least 2 points, compacting in place (time order
+ * and times unchanged).  Returns the points kept.  Band indexes are below
+ * SERIES_POOL_MAX_BANDS by construction (opening note). */
+static size_t pool_by_band(featmap_scratch *s, size_t n)
+{
+    size_t cnt[SERIES_POOL_MAX_BANDS] = {0};
+    double mean[SERIES_POOL_MAX_BANDS] = {0};
+    for (size_t i = 0; i < n; i++) {
+        cnt[s->b[i]]++;
+        mean[s->b[i]] += s->v[i];
+    }
+    for (int b = 0; b < SERIES_POOL_MAX_BANDS; b++)
+        if (cnt[b])
+            mean[b] /= (double)cnt[b];
+    size_t m = 0;
+    for (size_t i = 0; i < n; i++) {
+        int b = s->b[i];
+        if (cnt[b] < 2)
+            continue;
+        s->t[m] = s->t[i];
+        s->v[m] = s->v[i] - mean[b];
+        s->e[m] = s->e[i];
+        s->b[m] = b;
+        m++;
+    }
+    return m;
+}
+
+/* Colour gradient: the current detection against the history point
+ * nearest to it in time, in another band, within window_days (ties: the
+ * later point; points are time-sorted, so the last of equals wins):
+ *   x = (m_cur - m_other) / (lambda_cur - lambda_other)  [mag / micron],
+ *   e = sqrt(e_cur^2 + e_other^2) / |dlambda| when both errors are known.
+ * Missing without a current detection, without such a point, when either
+ * band has no wavelength in the map, or when dlambda is 0. */
+static void color_gradient(const featmap *fm, const featmap_scratch *s,
+                           const fm_feature *ft, double *x, double *e)
+{
+    const fm_point *cur = NULL, *best = NULL;
+    for (size_t i = 0; i < s->n && !cur; i++)
+        if (s->pts[i].cur)
+            cur = &s->pts[i];
+    if (!cur || cur->band < 0 || cur->band >= (int)fm->n_bands)
+        return;
+    double best_dt = INFINITY;
+    for (size_t i = 0; i < s->n; i++) {
+        const fm_point *p = &s->pts[i];
+        if (p->cur || p->band < 0 || p->band == cur->band)
+            continue;
+        double dt = fabs(p->t - cur->t);
+        if (dt <= ft->window_days && dt <= best_dt) {
+            best = p;
+            best_dt = dt;
+        }
+    }
+    if (!best || best->band >= (int)fm->n_bands)
+        return;
+    double dl = ft->wavelength_um[cur->band] - ft->wavelength_um[best->band];
+    if (!isfinite(dl) || dl == 0.0)
+        return;
+    *x = (cur->v - best->v) / dl;
+    if (cur->e > 0.0 && best->e > 0.0)
+        *e = sqrt(cur->e * cur->e + best->e * best->e) / fabs(dl);
 }
 
 static void color(const featmap_scratch *s, const fm_feature *ft, double *x,
@@ -1237,17 +1450,31 @@ static int finish(const featmap *fm, featmap_scratch *s, packet_features *out)
         const fm_feature *ft = &fm->feat[j];
         double x = NAN, e = 0.0;
         switch (ft->kind) {
-        case K_FIELD:
-            if (s->raw_st[ft->slot])
-                transform(ft->transform, s->raw[ft->slot],
-                          ft->err_slot >= 0 ? s->raw[ft->err_slot] : NAN,
-                          &x, &e);
+        case K_FIELD: {
+            int have = s->raw_st[ft->slot] &&
+                       (ft->minus_slot < 0 || s->raw_st[ft->minus_slot]);
+            if (!have)
+                break;
+            double raw = s->raw[ft->slot];
+            if (ft->minus_slot >= 0)
+                raw -= s->raw[ft->minus_slot];
+            transform(ft->transform, raw,
+                      ft->err_slot >= 0 ? s->raw[ft->err_slot] : NAN, &x, &e);
             break;
+        }
         case K_SERIES: {
             size_t n = select_points(s, ft->band, ft->include_current,
-                                     series_needs_err(ft->stat));
+                                     series_needs_err(ft->stat),
+                                     ft->pool_bands);
+            if (ft->pool_bands)
+                n = pool_by_band(s, n);
             if (n >= ft->min_points) {
-                x = series_compute(ft->stat, s->t, s->v, s->e, n, s->work);
+                /* The pooled slope re-centres t per band; on values that
+                 * are already centred it equals the slope on the raw ones. */
+                if (ft->pool_bands && ft->stat == SERIES_SLOPE)
+                    x = series_pooled_slope(s->t, s->v, s->b, n);
+                else
+                    x = series_compute(ft->stat, s->t, s->v, s->e, n, s->work);
                 if (ft->stat == SERIES_WMEAN && isfinite(x)) {
                     double sw = 0.0;
                     for (size_t i = 0; i < n; i++)
@@ -1258,7 +1485,10 @@ static int finish(const featmap *fm, featmap_scratch *s, packet_features *out)
             break;
         }
         case K_COLOR:
-            color(s, ft, &x, &e);
+            if (ft->gradient)
+                color_gradient(fm, s, ft, &x, &e);
+            else
+                color(s, ft, &x, &e);
             break;
         case K_DIFF:
         case K_RATIO: {
@@ -1370,7 +1600,7 @@ int featmap_extract_avro(const featmap *fm, const featmap_plan *pl,
                 char btxt[FM_BAND_MAX];
                 if (av_walk(&item, &pl->elem[EL_B], &v) &&
                     av_text(v, btxt, sizeof btxt) == RAW_OK)
-                    band = band_lookup(fm, btxt);
+                    band = band_lookup(fm, s, btxt);
                 add_point(s, st_t, t, st_v, x, st_e, e, band, 0);
             }
         }
@@ -1379,7 +1609,7 @@ int featmap_extract_avro(const featmap *fm, const featmap_plan *pl,
             char btxt[FM_BAND_MAX];
             if (av_walk(root, &pl->slot[SLOT_CUR_B], &v) &&
                 av_text(v, btxt, sizeof btxt) == RAW_OK)
-                band = band_lookup(fm, btxt);
+                band = band_lookup(fm, s, btxt);
             s->n = s->n < s->cap ? s->n : s->cap - 1;
             add_point(s, RAW_OK, s->raw[SLOT_CUR_T], RAW_OK, s->raw[SLOT_CUR_V],
                       s->raw_st[SLOT_CUR_E] ? RAW_OK : RAW_MISSING,
@@ -1441,7 +1671,7 @@ int featmap_extract_json(const featmap *fm, const json_t *root,
                 if (fm->elem[EL_B].n &&
                     js_text(js_walk(item, &fm->elem[EL_B]), btxt,
                             sizeof btxt) == RAW_OK)
-                    band = band_lookup(fm, btxt);
+                    band = band_lookup(fm, s, btxt);
                 add_point(s, st_t, t, st_v, x, st_e, e, band, 0);
             }
         }
@@ -1451,7 +1681,7 @@ int featmap_extract_json(const featmap *fm, const json_t *root,
             if (fm->slot[SLOT_CUR_B].n &&
                 js_text(js_walk(root, &fm->slot[SLOT_CUR_B]), btxt,
                         sizeof btxt) == RAW_OK)
-                band = band_lookup(fm, btxt);
+                band = band_lookup(fm, s, btxt);
             s->n = s->n < s->cap ? s->n : s->cap - 1;
             add_point(s, RAW_OK, s->raw[SLOT_CUR_T], RAW_OK, s->raw[SLOT_CUR_V],
                       s->raw_st[SLOT_CUR_E] ? RAW_OK : RAW_MISSING,

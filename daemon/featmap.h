@@ -21,6 +21,42 @@
  *    histories oldest first) and set packet_features.history_truncated.
  *  - "include_current" on color features (default false, as for series).
  *  - "min_points" on series (default: the statistic's own minimum).
+ *  - "pool_bands": true on a series with band "all" (absent band = "all";
+ *    a specific band is an error, "pool_bands needs band \"all\"", and
+ *    history.band or current.band must be configured).  Each band is
+ *    centred on its own mean so colour offsets between bands are not read
+ *    as variability or trend.  Of the points the series would use (after
+ *    include_current and, for error statistics, the err > 0 filter),
+ *    points without a band are dropped, then bands with fewer than 2
+ *    points; the rest keep their times and order and get the value
+ *    v_i - vbar_band(i).  "slope" is the pooled within-band slope
+ *    (series_pooled_slope, = OLS v ~ t + band dummies); every other
+ *    statistic runs on the centred values, so "count" counts the kept
+ *    points and "std" is the plain sample std (ddof 1) of the centred
+ *    values over all kept points (not the pooled within-band estimate
+ *    sqrt(SS / (n - bands)): it is that times sqrt((n-bands)/(n-1)))
+ *    and "latest_minus_mean" is the latest point's offset from its band
+ *    mean.  min_points applies to the kept points.  Bands are told apart
+ *    by their text, also bands the map does not name (up to 32 such per
+ *    packet; points in further ones count as having no band).
+ *  - "color": "gradient" with "wavelength_um": {band: microns, ...}
+ *    (required, each finite > 0; bands count toward FEATMAP_MAX_BANDS),
+ *    "window_days" (default 1) and optional "include_current" (must be
+ *    true if given; "mode" is refused).  Needs featmap.current with
+ *    current.band and featmap.history with history.band.  The current
+ *    detection against the history point nearest to it in time whose
+ *    band differs from the current band, within window_days either side
+ *    (ties: the later point, then the later in the history):
+ *    x = (m_cur - m_other) / (lambda_cur - lambda_other), magnitudes per
+ *    micron; err = sqrt(e_cur^2 + e_other^2) / |dlambda| when both errors
+ *    are known, else 0.  Missing without a current detection, without
+ *    such a point, when either band has no wavelength in the table (the
+ *    nearest point is chosen first, so a nearer point in a band without a
+ *    wavelength makes it missing), or when the two wavelengths are equal
+ *    (dlambda 0; allowed in the table, as two names for one filter).
+ *  - "minus": "<dotted path>" on field features: x = field - minus before
+ *    the transform; missing when either is missing (absent, null, a null
+ *    Avro union branch on the way); "err" stays the field's error.
  *
  * Semantics worth knowing:
  *  - History points with a missing or non-finite time or value are
@@ -32,8 +68,8 @@
  *    packet_features.type_errors.
  *  - Errors: field features carry their error path through the transform
  *    (first-order propagation); wmean carries 1/sqrt(sum w); color latest
- *    carries sqrt(eA^2 + eB^2); diff and ratio propagate; everything else
- *    has err 0 (unknown).
+ *    carries sqrt(eA^2 + eB^2), the gradient that over |dlambda|; diff and
+ *    ratio propagate; everything else has err 0 (unknown).
  *  - The packet id is required (PACKET_E_MISSING_ID); the source id is
  *    required when a "source" path is configured, else it is the packet id.
  *

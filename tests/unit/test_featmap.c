@@ -1,7 +1,9 @@
 /*
  * test_featmap.c - feature map validation (paths and rules) and feature
  * extraction from JSON packets: transforms, series, colors, diff/ratio,
- * missing handling, truncation.
+ * missing handling, truncation; the additions (band-pooled series, the
+ * colour gradient, field differences) from JSON and from Avro values,
+ * nullable unions included.
  *
  * Expected values are worked by hand from the definitions named beside
  * each check (series.c formulas, common practice for transforms).
@@ -407,6 +409,383 @@ static void test_series_without_bands(void **state)
     featmap_free(fm);
 }
 
+
+/* ---- additions: pool_bands, gradient, minus -------------------------- */
+
+static void test_validate_additions(void **state)
+{
+    (void)state;
+    json_t *spec = js(
+        "{\"id\": \"i\","
+        " \"history\": {\"path\": \"h\", \"time\": \"t\", \"value\": \"m\","
+        "               \"band\": \"b\"},"
+        " \"current\": {\"time\": \"c.t\", \"value\": \"c.m\"},"
+        " \"features\": ["
+        "  {\"name\": \"a\", \"series\": \"std\", \"band\": \"r\","
+        "   \"pool_bands\": true},"
+        "  {\"name\": \"b\", \"series\": \"std\", \"pool_bands\": 1},"
+        "  {\"name\": \"c\", \"field\": \"x\", \"minus\": \"p..mjd\"},"
+        "  {\"name\": \"d\", \"color\": \"gradient\"},"
+        "  {\"name\": \"e\", \"color\": \"gradient\", \"mode\": \"mean\","
+        "   \"include_current\": false,"
+        "   \"wavelength_um\": {\"g\": -0.5, \"all\": 0.6, \"r\": \"x\"}},"
+        "  {\"name\": \"f\", \"color\": [\"g\", \"r\"],"
+        "   \"wavelength_um\": {\"g\": 0.48}},"
+        "  {\"name\": \"g\", \"color\": \"slope\"},"
+        "  {\"name\": \"h\", \"color\": \"gradient\", \"wavelength_um\": {}}"
+        " ]}");
+    errlist l = {0};
+    int n = featmap_validate(spec, collect, &l);
+    assert_int_equal(n, l.n);
+    expect_err(&l, "featmap.features[0].pool_bands",
+               "pool_bands needs band \"all\"");
+    expect_err(&l, "featmap.features[1].pool_bands", "true or false");
+    expect_err(&l, "featmap.features[2].minus", "empty component");
+    expect_err(&l, "featmap.features[3].wavelength_um", "required");
+    /* current.band is not configured: the gradient needs it */
+    expect_err(&l, "featmap.features[3].color", "current.band");
+    expect_err(&l, "featmap.features[4].mode", "two-band form");
+    expect_err(&l, "featmap.features[4].include_current", "must be true");
+    expect_err(&l, "featmap.features[4].wavelength_um.g", "> 0");
+    expect_err(&l, "featmap.features[4].wavelength_um.all", "not \"all\"");
+    expect_err(&l, "featmap.features[4].wavelength_um.r", "> 0");
+    expect_err(&l, "featmap.features[5].wavelength_um", "only for");
+    expect_err(&l, "featmap.features[6].color", "or \"gradient\"");
+    expect_err(&l, "featmap.features[7].wavelength_um", "non-empty");
+    json_decref(spec);
+
+    /* pool_bands needs to know each point's band */
+    errlist l2 = {0};
+    json_t *nob = js("{\"id\": \"i\", \"history\": {\"path\": \"h\", \"time\": \"t\","
+                     " \"value\": \"v\"}, \"features\": ["
+                     " {\"name\": \"s\", \"series\": \"std\", \"pool_bands\": true}]}");
+    assert_int_equal(featmap_validate(nob, collect, &l2), 1);
+    expect_err(&l2, "featmap.features[0].pool_bands", "history.band");
+    json_decref(nob);
+
+    /* the gradient's bands count toward FEATMAP_MAX_BANDS */
+    char text[4096];
+    size_t at = (size_t)snprintf(
+        text, sizeof text,
+        "{\"id\": \"i\", \"history\": {\"path\": \"h\", \"time\": \"t\","
+        " \"value\": \"v\", \"band\": \"b\"}, \"current\": {\"time\": \"t\","
+        " \"value\": \"v\", \"band\": \"b\"}, \"features\": [{\"name\": \"g\","
+        " \"color\": \"gradient\", \"wavelength_um\": {");
+    for (int b = 0; b < 33; b++)
+        at += (size_t)snprintf(text + at, sizeof text - at, "%s\"b%d\": %d",
+                               b ? ", " : "", b, b + 1);
+    snprintf(text + at, sizeof text - at, "}}]}");
+    errlist l3 = {0};
+    json_t *many = js(text);
+    assert_int_equal(featmap_validate(many, collect, &l3), 1);
+    expect_err(&l3, "featmap.features", "at most 32 distinct bands");
+    json_decref(many);
+}
+
+static const char *SPEC_ADD =
+    "{\"id\": \"id\","
+    " \"history\": {\"path\": \"h\", \"time\": \"t\", \"value\": \"m\","
+    "               \"err\": \"e\", \"band\": \"b\"},"
+    " \"current\": {\"time\": \"obs.t\", \"value\": \"obs.m\","
+    "               \"err\": \"obs.e\", \"band\": \"obs.b\"},"
+    " \"features\": ["
+    "  {\"name\": \"pslope\", \"series\": \"slope\", \"band\": \"all\","
+    "   \"pool_bands\": true},"
+    "  {\"name\": \"pcount\", \"series\": \"count\", \"pool_bands\": true},"
+    "  {\"name\": \"pstd\", \"series\": \"std\", \"pool_bands\": true},"
+    "  {\"name\": \"plmm\", \"series\": \"latest_minus_mean\","
+    "   \"pool_bands\": true},"
+    "  {\"name\": \"pcount6\", \"series\": \"count\", \"pool_bands\": true,"
+    "   \"min_points\": 6},"
+    "  {\"name\": \"slope\", \"series\": \"slope\"},"
+    "  {\"name\": \"cgrad\", \"color\": \"gradient\", \"window_days\": 1,"
+    "   \"include_current\": true, \"wavelength_um\": {\"u\": 0.367,"
+    "   \"g\": 0.482, \"r\": 0.622, \"i\": 0.755, \"z\": 0.869, \"y\": 0.971,"
+    "   \"r2\": 0.622}},"
+    "  {\"name\": \"since\", \"field\": \"obs.t\", \"minus\": \"prior_limit.mjd\"},"
+    "  {\"name\": \"nsince\", \"field\": \"obs.t\", \"minus\": \"prior_limit.mjd\","
+    "   \"err\": \"obs.e\", \"transform\": \"negate\"}"
+    " ]}";
+
+enum { A_PSLOPE, A_PCOUNT, A_PSTD, A_PLMM, A_PCOUNT6, A_SLOPE, A_CGRAD,
+       A_SINCE, A_NSINCE, A_DIM };
+
+static int setup_add(void **state)
+{
+    fx *f = calloc(1, sizeof *f);
+    json_t *spec = js(SPEC_ADD);
+    char err[256] = "";
+    f->fm = featmap_new(spec, err, sizeof err);
+    json_decref(spec);
+    if (!f->fm) {
+        print_error("featmap_new: %s\n", err);
+        free(f);
+        return -1;
+    }
+    f->s = featmap_scratch_new(f->fm);
+    *state = f;
+    return f->s ? 0 : -1;
+}
+
+static void test_pool_bands(void **state)
+{
+    fx *f = *state;
+    assert_int_equal(featmap_dim(f->fm), A_DIM);
+    /* r: t 0, 2, 4 -> 18.0 18.4 18.6; g: t 1, 3 -> 19.0 19.6 (a colour
+     * offset of about +1); i: one point (dropped); one point without a
+     * band (dropped).  None of the bands is named elsewhere in the map
+     * except through the gradient, and "w" not at all. */
+    assert_int_equal(
+        extract(f, "{\"id\": \"p\", \"h\": ["
+                   " {\"t\": 3, \"m\": 19.6, \"e\": 0.1, \"b\": \"g\"},"
+                   " {\"t\": 0, \"m\": 18.0, \"e\": 0.1, \"b\": \"r\"},"
+                   " {\"t\": 1, \"m\": 19.0, \"e\": 0.1, \"b\": \"g\"},"
+                   " {\"t\": 2, \"m\": 18.4, \"e\": 0.1, \"b\": \"r\"},"
+                   " {\"t\": 5, \"m\": 17.0, \"e\": 0.1, \"b\": \"w\"},"
+                   " {\"t\": 4.5, \"m\": 30.0, \"e\": 0.1},"
+                   " {\"t\": 4, \"m\": 18.6, \"e\": 0.1, \"b\": \"r\"}]}"),
+        0);
+    packet_features *p = &f->pf;
+    /* pooled within-band slope (series.c formula): r: tbar 2, vbar 55/3,
+     * S_tv = (-2)(-1/3) + 2(4/15) = 1.2, S_tt = 8; g: tbar 2, vbar 19.3,
+     * S_tv = 0.6, S_tt = 2 -> (1.2 + 0.6) / (8 + 2) */
+    assert_near(p->x[A_PSLOPE], 0.18, 1e-12);
+    assert_near(p->x[A_PCOUNT], 5.0, 0);
+    /* numpy.std(ddof=1) of the centred values
+     * r: -1/3, 1/15, 4/15; g: -0.3, 0.3 -> sum of squares 11/30 over 4 */
+    assert_near(p->x[A_PSTD], sqrt(11.0 / 120.0), 1e-12);
+    /* latest kept point (r, t 4) against the mean of the residuals (0) */
+    assert_near(p->x[A_PLMM], 4.0 / 15.0, 1e-12);
+    /* min_points counts the 5 kept points, not the 7 read */
+    assert_int_equal(p->missing[A_PCOUNT6], 1);
+    assert_int_equal(p->history_points, 7);
+    /* the plain slope over all 7 points differs (colour offsets, the
+     * unbanded point) */
+    assert_int_equal(p->missing[A_SLOPE], 0);
+    assert_true(fabs(p->x[A_SLOPE] - 0.18) > 0.1);
+    /* no current detection: no gradient, no field difference */
+    assert_int_equal(p->missing[A_CGRAD], 1);
+    assert_int_equal(p->missing[A_SINCE], 1);
+
+    /* one band with 2 points at one time, one single point: the slope's
+     * denominator is 0 -> missing; count keeps the 2 points */
+    assert_int_equal(
+        extract(f, "{\"id\": \"p\", \"h\": ["
+                   " {\"t\": 1, \"m\": 19.0, \"b\": \"g\"},"
+                   " {\"t\": 1, \"m\": 19.2, \"b\": \"g\"},"
+                   " {\"t\": 2, \"m\": 18.0, \"b\": \"r\"}]}"),
+        0);
+    assert_int_equal(p->missing[A_PSLOPE], 1);
+    assert_near(p->x[A_PCOUNT], 2.0, 0);
+    assert_near(p->x[A_PSTD], sqrt(0.02), 1e-12); /* residuals -0.1, 0.1 */
+}
+
+static void test_color_gradient(void **state)
+{
+    fx *f = *state;
+    packet_features *p = &f->pf;
+    /* current r at 5.2; g 0.7 before and i 0.7 after tie: the later (i)
+     * wins; the r point is the same band; z is outside the window */
+    const char *head = "{\"id\": \"p\","
+                       " \"obs\": {\"t\": 5.2, \"m\": 18.0, \"e\": 0.03, \"b\": \"r\"},"
+                       " \"h\": [";
+    char text[1024];
+    snprintf(text, sizeof text, "%s"
+             " {\"t\": 3.0, \"m\": 17.0, \"e\": 0.1, \"b\": \"z\"},"
+             " {\"t\": 4.5, \"m\": 18.5, \"e\": 0.04, \"b\": \"g\"},"
+             " {\"t\": 5.1, \"m\": 18.1, \"e\": 0.02, \"b\": \"r\"},"
+             " {\"t\": 5.9, \"m\": 17.8, \"e\": 0.05, \"b\": \"i\"}]}", head);
+    assert_int_equal(extract(f, text), 0);
+    /* (m_r - m_i) / (0.622 - 0.755) mag/micron;
+     * err sqrt(0.03^2 + 0.05^2) / 0.133 */
+    assert_near(p->x[A_CGRAD], (18.0 - 17.8) / (0.622 - 0.755), 1e-12);
+    assert_near(p->err[A_CGRAD], sqrt(0.03 * 0.03 + 0.05 * 0.05) / 0.133, 1e-12);
+
+    /* without i: g, and the g error unknown -> err 0 */
+    snprintf(text, sizeof text, "%s"
+             " {\"t\": 4.5, \"m\": 18.5, \"b\": \"g\"},"
+             " {\"t\": 5.1, \"m\": 18.1, \"e\": 0.02, \"b\": \"r\"}]}", head);
+    assert_int_equal(extract(f, text), 0);
+    assert_near(p->x[A_CGRAD], (18.0 - 18.5) / (0.622 - 0.482), 1e-12);
+    assert_near(p->err[A_CGRAD], 0.0, 0);
+
+    /* the nearest other-band point is in a band without a wavelength */
+    snprintf(text, sizeof text, "%s"
+             " {\"t\": 4.5, \"m\": 18.5, \"b\": \"g\"},"
+             " {\"t\": 5.3, \"m\": 18.1, \"b\": \"w\"}]}", head);
+    assert_int_equal(extract(f, text), 0);
+    assert_int_equal(p->missing[A_CGRAD], 1);
+
+    /* a band at the same wavelength: dlambda 0 -> missing */
+    snprintf(text, sizeof text, "%s {\"t\": 5.0, \"m\": 18.5, \"b\": \"r2\"}]}",
+             head);
+    assert_int_equal(extract(f, text), 0);
+    assert_int_equal(p->missing[A_CGRAD], 1);
+
+    /* only same-band or out-of-window points */
+    snprintf(text, sizeof text, "%s"
+             " {\"t\": 4.1, \"m\": 18.5, \"b\": \"g\"},"
+             " {\"t\": 5.1, \"m\": 18.1, \"b\": \"r\"}]}", head);
+    assert_int_equal(extract(f, text), 0);
+    assert_int_equal(p->missing[A_CGRAD], 1);
+
+    /* the current band has no wavelength */
+    assert_int_equal(
+        extract(f, "{\"id\": \"p\", \"obs\": {\"t\": 5.2, \"m\": 18.0, \"b\": \"w\"},"
+                   " \"h\": [{\"t\": 5.0, \"m\": 18.5, \"b\": \"g\"}]}"),
+        0);
+    assert_int_equal(p->missing[A_CGRAD], 1);
+}
+
+static void test_field_minus_json(void **state)
+{
+    fx *f = *state;
+    packet_features *p = &f->pf;
+    assert_int_equal(
+        extract(f, "{\"id\": \"p\", \"obs\": {\"t\": 60005.5, \"m\": 18.0,"
+                   " \"e\": 0.03, \"b\": \"r\"}, \"prior_limit\": {\"mjd\": 60003.25}}"),
+        0);
+    assert_near(p->x[A_SINCE], 2.25, 1e-12);
+    assert_near(p->err[A_SINCE], 0.0, 0);
+    /* the transform applies after the difference; err is the field's */
+    assert_near(p->x[A_NSINCE], -2.25, 1e-12);
+    assert_near(p->err[A_NSINCE], 0.03, 1e-15);
+    static const char *const gone[] = {
+        "{\"id\": \"p\", \"obs\": {\"t\": 60005.5}, \"prior_limit\": null}",
+        "{\"id\": \"p\", \"obs\": {\"t\": 60005.5}}",
+        "{\"id\": \"p\", \"obs\": {\"t\": 60005.5}, \"prior_limit\": {\"mjd\": null}}",
+        "{\"id\": \"p\", \"obs\": {\"t\": null}, \"prior_limit\": {\"mjd\": 1.0}}",
+    };
+    for (size_t i = 0; i < sizeof gone / sizeof gone[0]; i++) {
+        assert_int_equal(extract(f, gone[i]), 0);
+        assert_int_equal(p->missing[A_SINCE], 1);
+        assert_int_equal(p->missing[A_NSINCE], 1);
+        assert_int_equal(p->type_errors, 0);
+    }
+}
+
+/* Avro: prior_limit is ["null", Limit] and obs.e a nullable double. */
+static const char *SCHEMA_ADD =
+    "{\"type\": \"record\", \"name\": \"Packet\", \"fields\": ["
+    " {\"name\": \"id\", \"type\": \"string\"},"
+    " {\"name\": \"obs\", \"type\": {\"type\": \"record\", \"name\": \"Obs\","
+    "  \"fields\": [{\"name\": \"t\", \"type\": \"double\"},"
+    "   {\"name\": \"m\", \"type\": \"double\"},"
+    "   {\"name\": \"e\", \"type\": [\"null\", \"double\"], \"default\": null},"
+    "   {\"name\": \"b\", \"type\": \"string\"}]}},"
+    " {\"name\": \"prior_limit\", \"type\": [\"null\", {\"type\": \"record\","
+    "  \"name\": \"Limit\", \"fields\": [{\"name\": \"mjd\", \"type\": \"double\"},"
+    "   {\"name\": \"band\", \"type\": \"string\"},"
+    "   {\"name\": \"mag\", \"type\": \"double\"}]}], \"default\": null},"
+    " {\"name\": \"h\", \"type\": {\"type\": \"array\", \"items\": {"
+    "  \"type\": \"record\", \"name\": \"Pt\", \"fields\": ["
+    "   {\"name\": \"t\", \"type\": \"double\"},"
+    "   {\"name\": \"m\", \"type\": \"double\"},"
+    "   {\"name\": \"e\", \"type\": [\"null\", \"double\"]},"
+    "   {\"name\": \"b\", \"type\": \"string\"}]}}}"
+    "]}";
+
+static void av_set(avro_value_t *rec, const char *name, avro_value_t *out)
+{
+    assert_int_equal(avro_value_get_by_name(rec, name, out, NULL), 0);
+}
+
+static void av_point(avro_value_t *arr, double t, double m, double e,
+                     const char *band)
+{
+    avro_value_t pt, x, br;
+    assert_int_equal(avro_value_append(arr, &pt, NULL), 0);
+    av_set(&pt, "t", &x);
+    avro_value_set_double(&x, t);
+    av_set(&pt, "m", &x);
+    avro_value_set_double(&x, m);
+    av_set(&pt, "e", &x);
+    if (e > 0.0) {
+        avro_value_set_branch(&x, 1, &br);
+        avro_value_set_double(&br, e);
+    } else {
+        avro_value_set_branch(&x, 0, &br);
+        avro_value_set_null(&br);
+    }
+    av_set(&pt, "b", &x);
+    avro_value_set_string(&x, band);
+}
+
+static void test_additions_avro(void **state)
+{
+    fx *f = *state;
+    avro_schema_t sc;
+    assert_int_equal(avro_schema_from_json_length(SCHEMA_ADD, strlen(SCHEMA_ADD),
+                                                  &sc), 0);
+    char err[256] = "";
+    featmap_plan *pl = featmap_plan_avro(f->fm, sc, err, sizeof err);
+    assert_non_null(pl);
+    avro_value_iface_t *iface = avro_generic_class_from_schema(sc);
+    avro_value_t v, x, y, br;
+    assert_int_equal(avro_generic_value_new(iface, &v), 0);
+    av_set(&v, "id", &x);
+    avro_value_set_string(&x, "p");
+    av_set(&v, "obs", &y);
+    av_set(&y, "t", &x);
+    avro_value_set_double(&x, 5.2);
+    av_set(&y, "m", &x);
+    avro_value_set_double(&x, 18.0);
+    av_set(&y, "e", &x);
+    avro_value_set_branch(&x, 1, &br);
+    avro_value_set_double(&br, 0.03);
+    av_set(&y, "b", &x);
+    avro_value_set_string(&x, "r");
+    av_set(&v, "prior_limit", &x);
+    avro_value_set_branch(&x, 1, &br);
+    av_set(&br, "mjd", &y);
+    avro_value_set_double(&y, 3.0);
+    av_set(&br, "band", &y);
+    avro_value_set_string(&y, "g");
+    av_set(&v, "h", &x);
+    /* the JSON pool_bands packet's r and g points, plus the gradient's i */
+    av_point(&x, 0.0, 18.0, 0.1, "r");
+    av_point(&x, 1.0, 19.0, 0.1, "g");
+    av_point(&x, 2.0, 18.4, 0.1, "r");
+    av_point(&x, 3.0, 19.6, 0.1, "g");
+    av_point(&x, 4.0, 18.6, 0.1, "r");
+    av_point(&x, 5.9, 17.8, 0.05, "i");
+
+    packet_features *p = &f->pf;
+    memset(p, 0xa5, sizeof *p);
+    assert_int_equal(featmap_extract_avro(f->fm, pl, &v, f->s, p), 0);
+    assert_int_equal(p->type_errors, 0);
+    assert_near(p->x[A_PSLOPE], 0.18, 1e-12);
+    assert_near(p->x[A_PCOUNT], 5.0, 0);
+    assert_near(p->x[A_CGRAD], (18.0 - 17.8) / (0.622 - 0.755), 1e-12);
+    assert_near(p->err[A_CGRAD], sqrt(0.03 * 0.03 + 0.05 * 0.05) / 0.133, 1e-12);
+    /* through the record branch of ["null", Limit] */
+    assert_near(p->x[A_SINCE], 2.2, 1e-12);
+    assert_near(p->x[A_NSINCE], -2.2, 1e-12);
+    assert_near(p->err[A_NSINCE], 0.03, 1e-15);
+
+    /* prior_limit null: the difference is missing, not a type error; a
+     * null obs.e leaves the error unknown */
+    av_set(&v, "prior_limit", &x);
+    avro_value_set_branch(&x, 0, &br);
+    avro_value_set_null(&br);
+    av_set(&v, "obs", &y);
+    av_set(&y, "e", &x);
+    avro_value_set_branch(&x, 0, &br);
+    avro_value_set_null(&br);
+    memset(p, 0xa5, sizeof *p);
+    assert_int_equal(featmap_extract_avro(f->fm, pl, &v, f->s, p), 0);
+    assert_int_equal(p->type_errors, 0);
+    assert_int_equal(p->missing[A_SINCE], 1);
+    assert_int_equal(p->missing[A_NSINCE], 1);
+    assert_int_equal(p->missing[A_CGRAD], 0);
+    assert_near(p->err[A_CGRAD], 0.0, 0);
+
+    avro_value_decref(&v);
+    avro_value_iface_decref(iface);
+    featmap_plan_free(pl);
+    avro_schema_decref(sc);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -418,6 +797,12 @@ int main(void)
         cmocka_unit_test_setup_teardown(test_history_truncated_to_newest, setup,
                                         teardown),
         cmocka_unit_test(test_series_without_bands),
+        cmocka_unit_test(test_validate_additions),
+        cmocka_unit_test_setup_teardown(test_pool_bands, setup_add, teardown),
+        cmocka_unit_test_setup_teardown(test_color_gradient, setup_add, teardown),
+        cmocka_unit_test_setup_teardown(test_field_minus_json, setup_add,
+                                        teardown),
+        cmocka_unit_test_setup_teardown(test_additions_avro, setup_add, teardown),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
