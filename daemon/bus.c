@@ -11,6 +11,16 @@
  * marks the slot dirty, and dirty slots are stored together after the
  * producer queue has been served, so the list allocation of
  * rd_kafka_offsets_store happens once per poll round, not per packet.
+ *
+ * Input: a slot holds its partition's own librdkafka queue, detached from
+ * the consumer queue (rd_kafka_queue_forward(q, NULL)) before the
+ * partition is assigned, so librdkafka never forwards it again at fetch
+ * start.  Holding the input for back-pressure is then just not reading
+ * those queues: librdkafka stops fetching a partition whose queue is full,
+ * nothing prefetched is dropped, and taking input again costs no fetch
+ * round trip.  The partitions are read a fair share each, starting one
+ * slot further every round.  The consumer queue still gets rebalances and
+ * errors, and the messages of a partition that has no slot.
  */
 #include "bus.h"
 
@@ -25,6 +35,13 @@
 #include "offsets.h"
 
 #define BUS_MAX_OUT_TOPICS 8
+
+/* How long holding the input waits for the producer to send the batches
+ * it lingers on (rd_kafka_flush ignores linger.ms only while it runs). */
+#define BUS_HOLD_FLUSH_MS 10
+
+/* Batches of input handled per wake-up before the loop gets its turn. */
+#define BUS_ROUNDS_PER_WAKE 8
 
 struct bus_ticket {
     uint32_t slot;
@@ -42,6 +59,7 @@ struct bus_ticket {
 
 typedef struct bus_slot {
     rd_kafka_topic_t *rkt; /* consumer-side topic handle, identity only */
+    rd_kafka_queue_t *q;   /* the partition's own queue while assigned */
     char topic[256];
     int32_t partition;
     uint32_t gen;
@@ -73,7 +91,8 @@ struct bus {
     bus_ticket *free_tickets;
     uint64_t ntickets;
     uint64_t in_flight;
-    int paused;
+    int paused;            /* input held for back-pressure */
+    uint32_t next_slot;    /* where the next fair round starts */
     int consuming;
     int fatal;
 
@@ -148,6 +167,34 @@ static int slot_add(bus *b, const char *topic, int32_t part)
     return -1;
 }
 
+/* Detach the partition's queue from the consumer queue and wake the loop
+ * through the consumer pipe when it fills.  Must run before the partition
+ * is assigned: the fetcher forwards a queue the application has not
+ * claimed to the consumer queue when it starts.  Without a queue the
+ * partition's messages arrive on the consumer queue, which also works. */
+static void slot_open_queue(bus *b, bus_slot *sl)
+{
+    if (sl->q)
+        return;
+    sl->q = rd_kafka_queue_get_partition(b->consumer, sl->topic, sl->partition);
+    if (!sl->q)
+        return;
+    rd_kafka_queue_forward(sl->q, NULL);
+    rd_kafka_queue_io_event_enable(sl->q, b->cpipe[1], "1", 1);
+}
+
+/* Stop reading a partition's queue (revoke, close).  What is left in it
+ * belongs to the old assignment: librdkafka's version barrier discards it
+ * if the partition comes back. */
+static void slot_close_queue(bus_slot *sl)
+{
+    if (!sl->q)
+        return;
+    rd_kafka_queue_io_event_enable(sl->q, -1, NULL, 0);
+    rd_kafka_queue_destroy(sl->q);
+    sl->q = NULL;
+}
+
 /* ---- offsets ---------------------------------------------------------- */
 
 static void store_dirty(bus *b)
@@ -200,31 +247,23 @@ static void ticket_finish(bus *b, bus_ticket *t)
     ticket_release(b, t);
 }
 
-/* ---- pause / resume ---------------------------------------------------- */
+/* ---- back-pressure ------------------------------------------------------ */
 
-static void set_paused(bus *b, int pause)
-{
-    if (b->paused == pause)
-        return;
-    rd_kafka_topic_partition_list_t *l = NULL;
-    if (rd_kafka_assignment(b->consumer, &l) == 0 && l) {
-        if (pause)
-            rd_kafka_pause_partitions(b->consumer, l);
-        else
-            rd_kafka_resume_partitions(b->consumer, l);
-        rd_kafka_topic_partition_list_destroy(l);
-    }
-    b->paused = pause;
-    if (pause)
-        b->counters.pauses++;
-}
-
+/* Holding the input is a flag that serve_consumer obeys; librdkafka's
+ * partitions are never paused (see the top of this file). */
 static void check_pressure(bus *b)
 {
-    if (!b->paused && b->in_flight >= b->o.max_in_flight)
-        set_paused(b, 1);
-    else if (b->paused && b->in_flight <= b->o.max_in_flight / 2)
-        set_paused(b, 0);
+    if (!b->paused && b->in_flight >= b->o.max_in_flight) {
+        b->paused = 1;
+        b->counters.pauses++;
+        /* No more results join the producer's batches until deliveries
+         * free tickets, so lingering would only idle (max_in_flight
+         * results per linger.ms at best): send what is held now. */
+        rd_kafka_flush(b->producer, BUS_HOLD_FLUSH_MS);
+        store_dirty(b);
+    }
+    if (b->paused && b->in_flight <= b->o.max_in_flight / 2)
+        b->paused = 0;
 }
 
 /* ---- librdkafka callbacks ---------------------------------------------- */
@@ -332,6 +371,7 @@ static void bus_revoke(bus *b, rd_kafka_topic_partition_list_t *parts, int lost)
         if (b->cb.on_revoke)
             b->cb.on_revoke(b->cb.ctx, parts->elems[i].topic, parts->elems[i].partition);
         if (s >= 0) {
+            slot_close_queue(&b->slots[s]);
             b->slots[s].assigned = 0;
             b->slots[s].gen++;
             offsets_reset(&b->tracker, (uint32_t)s);
@@ -357,10 +397,12 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
         }
         for (int i = 0; i < parts->cnt; i++) {
             rd_kafka_topic_partition_t *tp = &parts->elems[i];
-            if (slot_add(b, tp->topic, tp->partition) < 0 && b->cb.on_log)
+            int sidx = slot_add(b, tp->topic, tp->partition);
+            if (sidx < 0 && b->cb.on_log)
                 b->cb.on_log(b->cb.ctx, 3, "ASSIGN",
                              "more partitions assigned than kafka.max_partitions");
-            int sidx = slot_find(b, tp->topic, tp->partition);
+            if (sidx >= 0)
+                slot_open_queue(b, &b->slots[sidx]);
             if (sidx >= 0 && !tp->err && tp->offset >= 0)
                 b->slots[sidx].stored = tp->offset; /* shown until one moves */
             if (b->cb.on_assign) {
@@ -374,13 +416,6 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
             rd_kafka_incremental_assign(rk, parts);
         else
             rd_kafka_assign(rk, parts);
-        /* librdkafka keeps a partition's pause state across unassign and
-         * assign: a partition paused before a rebalance would come back
-         * paused for good.  Set it explicitly either way. */
-        if (b->paused)
-            rd_kafka_pause_partitions(rk, parts);
-        else
-            rd_kafka_resume_partitions(rk, parts);
     } else {
         bus_revoke(b, parts, rd_kafka_assignment_lost(rk));
         if (coop)
@@ -400,17 +435,118 @@ static void serve_producer(bus *b)
     check_pressure(b);
 }
 
+/* Hand b->batch[0..n) to the handler, one ticket each.  Returns the
+ * messages handed on (errors are logged and dropped). */
+static size_t handle_batch(bus *b, size_t n)
+{
+    size_t handled = 0;
+    for (size_t i = 0; i < n; i++) {
+        rd_kafka_message_t *m = b->batch[i];
+        if (m->err) {
+            if (m->err != RD_KAFKA_RESP_ERR__PARTITION_EOF) {
+                b->counters.consumer_errors++;
+                if (b->cb.on_log)
+                    b->cb.on_log(b->cb.ctx, 4, "CONSUME",
+                                 rd_kafka_message_errstr(m));
+            }
+            rd_kafka_message_destroy(m);
+            continue;
+        }
+        bus_ticket *t = b->free_tickets;
+        int s = slot_for_message(b, m);
+        if (!t || s < 0) {
+            /* An unknown partition (more than max_partitions assigned;
+             * no ticket cannot happen, see the room in serve_consumer):
+             * nothing of it is ever stored, so it comes back after a
+             * restart. */
+            b->counters.untracked++;
+            rd_kafka_message_destroy(m);
+            continue;
+        }
+        b->free_tickets = t->next_free;
+        b->in_flight++;
+        t->slot = (uint32_t)s;
+        t->gen = b->slots[s].gen;
+        t->offset = m->offset;
+        t->remaining = 0;
+        t->attempts = 0;
+        t->sealed = 0;
+        t->tag = 0;
+        t->failed = 0;
+        t->consumed_us = now_us();
+        t->broker_ts_ms = rd_kafka_message_timestamp(m, NULL);
+        int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
+        if (rc < 0) {
+            /* Below the window (a redelivery) or a full window: the
+             * output is still produced; the offset is not tracked. */
+            t->offset = -1;
+            b->counters.untracked++;
+        }
+        b->counters.consumed++;
+        b->cb.on_message(b->cb.ctx, b, m, t);
+        t->sealed = 1;
+        if (t->remaining == 0 && !t->failed)
+            ticket_finish(b, t);
+        rd_kafka_message_destroy(m);
+        handled++;
+    }
+    return handled;
+}
+
+/* Take at most want messages from q and handle them; returns how many
+ * were taken (handled or dropped). */
+static size_t take_from(bus *b, rd_kafka_queue_t *q, uint32_t want, size_t *handled)
+{
+    if (want == 0)
+        return 0;
+    ssize_t n = rd_kafka_consume_batch_queue(q, 0, b->batch, want);
+    if (n <= 0)
+        return 0;
+    *handled += handle_batch(b, (size_t)n);
+    return (size_t)n;
+}
+
+/* One fair round over the assigned partitions' own queues: each gets an
+ * equal share of budget (at least one message), the first one a slot
+ * further than last round's. */
+static size_t take_round(bus *b, uint32_t budget, size_t *handled)
+{
+    uint32_t active = 0;
+    for (uint32_t i = 0; i < b->nslots; i++)
+        if (b->slots[i].assigned && b->slots[i].q)
+            active++;
+    if (active == 0 || budget == 0)
+        return 0;
+    uint32_t share = budget / active ? budget / active : 1;
+    uint32_t first = b->next_slot;
+    int rotated = 0;
+    size_t taken = 0;
+    for (uint32_t k = 0; k < b->nslots && taken < budget; k++) {
+        uint32_t i = (first + k) % b->nslots;
+        bus_slot *sl = &b->slots[i];
+        if (!sl->assigned || !sl->q)
+            continue;
+        if (!rotated) {
+            b->next_slot = (i + 1) % b->nslots;
+            rotated = 1;
+        }
+        uint32_t left = budget - (uint32_t)taken;
+        taken += take_from(b, sl->q, share < left ? share : left, handled);
+    }
+    return taken;
+}
+
 static void serve_consumer(bus *b)
 {
-    for (;;) {
+    for (uint32_t round = 0;; round++) {
         /* rd_kafka_poll() must not serve a queue that carries messages
          * (librdkafka asserts), and a message taken must be processed: a
          * dropped one would later look like a gap and be skipped.  So
-         * while draining the consumer queue is left alone (the final
-         * close serves the revoke), and otherwise a call never takes more
-         * messages than there are free tickets.  While paused the call
-         * still runs, to serve rebalances; librdkafka discards what was
-         * fetched for paused partitions. */
+         * while draining the queues are left alone (the final close
+         * serves the revoke), and otherwise a call never takes more
+         * messages than there are free tickets.  The consumer queue is
+         * served even while the input is held, for rebalances and errors
+         * (its messages, of partitions without a slot, are rare). */
         if (!b->consuming || b->fatal)
             return;
         uint64_t free_tickets = b->ntickets - b->in_flight;
@@ -419,66 +555,31 @@ static void serve_consumer(bus *b)
             room = (uint32_t)free_tickets;
         if (room == 0)
             return;
-        ssize_t n = rd_kafka_consume_batch_queue(b->cq, 0, b->batch, room);
-        if (n <= 0)
+        if (round == BUS_ROUNDS_PER_WAKE) {
+            /* Let the loop run its timers and the status page, and come
+             * back through the consumer pipe: a full partition queue
+             * gets no new message to signal it. */
+            ssize_t w = write(b->cpipe[1], "1", 1);
+            (void)w; /* a full pipe has a wake-up pending already */
             return;
-        size_t handled = 0;
-        for (ssize_t i = 0; i < n; i++) {
-            rd_kafka_message_t *m = b->batch[i];
-            if (m->err) {
-                if (m->err != RD_KAFKA_RESP_ERR__PARTITION_EOF) {
-                    b->counters.consumer_errors++;
-                    if (b->cb.on_log)
-                        b->cb.on_log(b->cb.ctx, 4, "CONSUME",
-                                     rd_kafka_message_errstr(m));
-                }
-                rd_kafka_message_destroy(m);
-                continue;
-            }
-            bus_ticket *t = b->free_tickets;
-            int s = slot_for_message(b, m);
-            if (!t || s < 0) {
-                /* An unknown partition (more than max_partitions assigned;
-                 * no ticket cannot happen, see room above): nothing of it
-                 * is ever stored, so it comes back after a restart. */
-                b->counters.untracked++;
-                rd_kafka_message_destroy(m);
-                continue;
-            }
-            b->free_tickets = t->next_free;
-            b->in_flight++;
-            t->slot = (uint32_t)s;
-            t->gen = b->slots[s].gen;
-            t->offset = m->offset;
-            t->remaining = 0;
-            t->attempts = 0;
-            t->sealed = 0;
-            t->tag = 0;
-            t->failed = 0;
-            t->consumed_us = now_us();
-            t->broker_ts_ms = rd_kafka_message_timestamp(m, NULL);
-            int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
-            if (rc < 0) {
-                /* Below the window (a redelivery) or a full window: the
-                 * output is still produced; the offset is not tracked. */
-                t->offset = -1;
-                b->counters.untracked++;
-            }
-            b->counters.consumed++;
-            b->cb.on_message(b->cb.ctx, b, m, t);
-            t->sealed = 1;
-            if (t->remaining == 0 && !t->failed)
-                ticket_finish(b, t);
-            rd_kafka_message_destroy(m);
-            handled++;
         }
+        size_t handled = 0;
+        size_t taken = take_from(b, b->cq, room, &handled);
+        /* The partitions' input stops at max_in_flight exactly. */
+        if (!b->paused && b->in_flight < b->o.max_in_flight) {
+            uint64_t below = b->o.max_in_flight - b->in_flight;
+            uint32_t budget = room - (uint32_t)taken;
+            if (below < budget)
+                budget = (uint32_t)below;
+            taken += take_round(b, budget, &handled);
+        }
+        if (taken == 0)
+            return;
         if (b->cb.on_batch_end)
             b->cb.on_batch_end(b->cb.ctx, b, handled);
         /* Serve delivery reports between batches so offsets move and the
-         * producer queue does not fill. */
+         * producer queue does not fill; this may hold the input. */
         serve_producer(b);
-        if ((size_t)n < b->o.poll_batch)
-            return;
     }
 }
 
@@ -505,6 +606,9 @@ static void on_ppoll(uv_poll_t *h, int status, int events)
     bus *b = h->data;
     drain_pipe(b->ppipe[0]);
     serve_producer(b);
+    /* Deliveries free tickets: take input now rather than at the next
+     * timer tick. */
+    serve_consumer(b);
 }
 
 /* Liveness: results in flight but no delivery report at all for longer
@@ -852,6 +956,8 @@ static void on_handle_closed(uv_handle_t *h)
         rd_kafka_topic_destroy(b->out[i].rkt);
     rd_kafka_queue_destroy(b->pq);
     rd_kafka_destroy(b->producer);
+    for (uint32_t i = 0; i < b->nslots; i++)
+        slot_close_queue(&b->slots[i]);
     rd_kafka_queue_destroy(b->cq);
     rd_kafka_destroy(b->consumer);
     for (int i = 0; i < 2; i++) {

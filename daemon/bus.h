@@ -18,8 +18,20 @@
  * with a retriable error is produced again with the same ticket; a
  * permanent failure calls on_fatal and the offset is never stored.
  *
- * Back-pressure: when the tickets in flight reach max_in_flight, every
- * assigned partition is paused and consumption resumes below half of it.
+ * Each assigned partition's messages are taken from that partition's own
+ * librdkafka queue (detached from the consumer queue at assign), a fair
+ * share per partition in turn, so one partition's backlog never starves
+ * the others; the consumer queue then carries only events (rebalances,
+ * errors), which are served whatever the back-pressure.
+ *
+ * Back-pressure: when the tickets in flight reach max_in_flight, the bus
+ * holds its input (takes no more messages; what librdkafka prefetched
+ * stays queued, bounded by queued.min.messages and
+ * queued.max.messages.kbytes per partition) and asks the producer to send
+ * what it is lingering on, since nothing more joins those batches until
+ * deliveries come back; input is taken again below half of max_in_flight.
+ * librdkafka's pause/resume is never used: its per-partition pause state
+ * outlives an unassign, and each pause drops the prefetched messages.
  * On revoke, the producer is flushed (bounded by revoke_flush_ms) so the
  * partitions' offsets are stored before they are let go.
  */
@@ -80,7 +92,7 @@ typedef struct bus_opts {
     const char *const *producer_kv;
     uint32_t n_producer_kv;
     uint32_t poll_batch;      /* messages per consume call */
-    uint32_t max_in_flight;   /* tickets before pausing */
+    uint32_t max_in_flight;   /* tickets before the input is held */
     uint32_t poll_interval_ms;
     uint32_t max_partitions;  /* assigned partitions tracked at once */
     uint32_t revoke_flush_ms;
@@ -106,7 +118,7 @@ typedef struct bus_counters {
     uint64_t delivery_failed; /* permanent */
     uint64_t untracked;       /* redeliveries below the window */
     uint64_t consumer_errors;
-    uint64_t pauses;
+    uint64_t pauses;          /* times the input was held (back-pressure) */
     uint64_t offsets_stored;
     uint64_t purges;          /* stalled producer queues purged (watchdog) */
 } bus_counters;
@@ -144,7 +156,7 @@ void bus_stop_consuming(bus *b);
 /* Tickets still waiting on deliveries. */
 uint64_t bus_in_flight(const bus *b);
 
-/* Nonzero while input is paused for back-pressure (also with no
+/* Nonzero while input is held for back-pressure (also with no
  * partition assigned, e.g. after a revoke during a broker outage). */
 int bus_paused(const bus *b);
 
