@@ -5,8 +5,9 @@
  * written with one write(2) under the sink's mutex, so concurrent lines
  * never interleave and no allocation happens on any path.  The rate
  * limiter is a fixed open-addressed table keyed by a hash of the format
- * string; when it is full, new keys pass unlimited (a log line is never
- * lost because the table is small).
+ * string (or of a caller's key text, digit runs folded); when it is full,
+ * new keys pass unlimited (a log line is never lost because the table is
+ * small).
  */
 #include "log.h"
 
@@ -337,12 +338,20 @@ void log_sink_set_format(log_sink *s, log_format format)
     s->format = (int)format;
 }
 
-static uint64_t fmt_key(const char *fmt, log_level level)
+static uint64_t limit_key(const char *text, log_level level, int keyed)
 {
-    /* FNV-1a 64 over the format text and the level; never 0. */
-    uint64_t h = 1469598103934665603ull ^ (uint64_t)level;
-    for (const unsigned char *p = (const unsigned char *)fmt; *p; p++) {
-        h ^= *p;
+    /* FNV-1a 64 over the text and the level; never 0.  In a caller's key
+     * a run of digits hashes as one '#', and the two kinds of key hash
+     * apart. */
+    uint64_t h = 1469598103934665603ull ^ (uint64_t)level ^ (keyed ? 0x100u : 0u);
+    for (const unsigned char *p = (const unsigned char *)text; *p; p++) {
+        unsigned char ch = *p;
+        if (keyed && ch >= '0' && ch <= '9') {
+            while (p[1] >= '0' && p[1] <= '9')
+                p++;
+            ch = '#';
+        }
+        h ^= ch;
         h *= 1099511628211ull;
     }
     return h == 0 ? 1 : h;
@@ -358,23 +367,24 @@ static void emit_suppressed(log_sink *s, const log_limit_slot *slot,
     size_t len;
 
     log_ctx_init(&c, s, "log");
-    snprintf(msg, sizeof msg, "suppressed %u similar messages (like \"%.200s\")",
-             slot->suppressed, slot->fmt);
+    snprintf(msg, sizeof msg, "suppressed %u similar messages (like \"%s\")",
+             slot->suppressed, slot->text);
     len = build_line(&c, slot->level, now_ms, &f, 1, msg, 1, line, sizeof line);
     if (len != (size_t)-1)
         sink_write(s, line, len);
 }
 
-/* Under the lock: 1 = write this line, 0 = drop (counted). */
-static int limiter_admit(log_sink *s, log_level level, const char *fmt,
-                         uint64_t now_ms)
+/* Under the lock: 1 = write this line, 0 = drop (counted).  text is the
+ * format string, or the caller's key when keyed. */
+static int limiter_admit(log_sink *s, log_level level, const char *text,
+                         int keyed, uint64_t now_ms)
 {
     uint64_t key;
     log_limit_slot *slot = NULL;
 
     if (level > LOG_LEVEL_WARN || s->limit_interval_ms == 0)
         return 1;
-    key = fmt_key(fmt, level);
+    key = limit_key(text, level, keyed);
     for (unsigned probe = 0; probe < LOG_LIMIT_SLOTS; probe++) {
         log_limit_slot *t = &s->slots[(key + probe) % LOG_LIMIT_SLOTS];
         if (t->key == key || t->key == 0) {
@@ -386,7 +396,7 @@ static int limiter_admit(log_sink *s, log_level level, const char *fmt,
         return 1; /* table full: never lose a line for want of a slot */
     if (slot->key == 0) {
         slot->key = key;
-        slot->fmt = fmt;
+        snprintf(slot->text, sizeof slot->text, "%s", text);
         slot->level = level;
         slot->window_start_ms = now_ms;
         slot->count = 0;
@@ -466,28 +476,48 @@ void log_ctx_child(log_ctx *child, const log_ctx *parent,
     child->n_fields = n;
 }
 
+static void emit(const log_ctx *c, log_level level, const char *key,
+                 const log_field *fields, size_t n_fields, const char *fmt,
+                 va_list ap)
+{
+    char line[LOG_LINE_MAX];
+    log_sink *s = c->sink;
+    uint64_t now;
+    size_t len;
+
+    pthread_mutex_lock(&s->lock);
+    now = sink_now_ms(s);
+    if (limiter_admit(s, level, key != NULL ? key : fmt, key != NULL, now)) {
+        len = log_format_line(c, level, now, fields, n_fields, line,
+                              sizeof line, fmt, ap);
+        sink_write(s, line, len);
+    }
+    pthread_mutex_unlock(&s->lock);
+}
+
 void log_emit(const log_ctx *c, log_level level, const log_field *fields,
               size_t n_fields, const char *fmt, ...)
 {
-    char line[LOG_LINE_MAX];
-    log_sink *s;
-    uint64_t now;
-    size_t len;
     va_list ap;
 
     if (!log_enabled(c, level))
         return;
-    s = c->sink;
-    pthread_mutex_lock(&s->lock);
-    now = sink_now_ms(s);
-    if (limiter_admit(s, level, fmt, now)) {
-        va_start(ap, fmt);
-        len = log_format_line(c, level, now, fields, n_fields, line,
-                              sizeof line, fmt, ap);
-        va_end(ap);
-        sink_write(s, line, len);
-    }
-    pthread_mutex_unlock(&s->lock);
+    va_start(ap, fmt);
+    emit(c, level, NULL, fields, n_fields, fmt, ap);
+    va_end(ap);
+}
+
+void log_emit_keyed(const log_ctx *c, log_level level, const char *key,
+                    const log_field *fields, size_t n_fields, const char *fmt,
+                    ...)
+{
+    va_list ap;
+
+    if (!log_enabled(c, level))
+        return;
+    va_start(ap, fmt);
+    emit(c, level, key, fields, n_fields, fmt, ap);
+    va_end(ap);
 }
 
 /* ---- the process-wide fallback ------------------------------------------ */

@@ -16,10 +16,15 @@
  *   so lines from several threads (librdkafka's callbacks) never interleave.
  * - Timestamps are ISO-8601 UTC with milliseconds: 2025-03-01T21:04:05.123Z.
  * - Rate limiting: warnings and errors with the same message key (the
- *   format string of the call site) are let through at most `burst` times
- *   per `interval_ms`; the rest are counted, and the next line of that key
- *   after the window (or log_sink_flush_suppressed()) first writes
- *   "suppressed K similar messages".  Info and debug are never limited.
+ *   format string of the call site, or the text given to the *_keyed
+ *   variants) are let through at most `burst` times per `interval_ms`; the
+ *   rest are counted, and the next line of that key after the window (or
+ *   log_sink_flush_suppressed()) first writes "suppressed K similar
+ *   messages".  Info and debug are never limited.  Lines relayed from a
+ *   library through one "%s" call site use a keyed variant, so that
+ *   distinct messages do not count against each other; digits do not
+ *   count in such a key, so one message repeated with changing numbers
+ *   (a port, a duration, a count) is still one flood.
  *
  * Invariants: a sink must outlive every context pointing to it; a context
  * must outlive its children.  Field keys and string values are borrowed
@@ -75,6 +80,7 @@ typedef struct log_field {
     (sizeof((const log_field[]){__VA_ARGS__}) / sizeof(log_field))
 
 #define LOG_LIMIT_SLOTS 64u   /* distinct rate-limited keys tracked at once */
+#define LOG_LIMIT_TEXT 160u   /* bytes of a key kept for its "suppressed" line */
 #define LOG_CTX_FIELDS 6u     /* context fields per context level */
 #define LOG_LINE_MAX 2048u    /* longer lines are truncated, marked "..." */
 
@@ -83,8 +89,8 @@ typedef struct log_limit_slot {
     uint64_t window_start_ms;
     uint32_t count;           /* lines let through in this window */
     uint32_t suppressed;      /* lines dropped in this window */
-    const char *fmt;          /* the key's text, for the suppressed line */
     log_level level;
+    char text[LOG_LIMIT_TEXT]; /* the key's text (cut), for the suppressed line */
 } log_limit_slot;
 
 typedef void (*log_write_fn)(void *arg, const char *line, size_t len);
@@ -158,6 +164,13 @@ void log_emit(const log_ctx *c, log_level level, const log_field *fields,
               size_t n_fields, const char *fmt, ...)
     __attribute__((format(printf, 5, 6)));
 
+/* As log_emit, with the rate limiter keyed by the text key (borrowed for
+ * the call; runs of digits in it count as one character, see the top)
+ * instead of fmt; a NULL key keys by fmt as log_emit does. */
+void log_emit_keyed(const log_ctx *c, log_level level, const char *key,
+                    const log_field *fields, size_t n_fields, const char *fmt,
+                    ...) __attribute__((format(printf, 6, 7)));
+
 /* Build one line into buf (no trailing newline added beyond the one the
  * line carries); returns its length.  Exposed for tests and for callers
  * that want the exact text (e.g. the status page's recent-errors box). */
@@ -179,6 +192,15 @@ size_t log_format_line(const log_ctx *c, log_level level, uint64_t now_ms,
         const log_ctx *log__c = (ctx);                                       \
         if (log_enabled(log__c, (lvl)))                                      \
             log_emit(log__c, (lvl), __VA_ARGS__);                            \
+    } while (0)
+
+/* Usage: log_at_keyed_kv(ctx, LOG_LEVEL_WARN, key, LOG_KV(...), "%s", msg);
+ * key is evaluated only when the level is enabled. */
+#define log_at_keyed_kv(ctx, lvl, key, ...)                                  \
+    do {                                                                     \
+        const log_ctx *log__c = (ctx);                                       \
+        if (log_enabled(log__c, (lvl)))                                      \
+            log_emit_keyed(log__c, (lvl), (key), __VA_ARGS__);               \
     } while (0)
 
 #define log_error(ctx, ...) log_at(ctx, LOG_LEVEL_ERROR, __VA_ARGS__)

@@ -519,7 +519,15 @@ static void on_bus_log(void *ctx, int level, const char *fac, const char *msg)
     service *s = ctx;
     log_level l = level <= 3 ? LOG_LEVEL_ERROR : level <= 4 ? LOG_LEVEL_WARN
                 : level <= 6 ? LOG_LEVEL_INFO : LOG_LEVEL_DEBUG;
-    log_at_kv(&s->log_bus, l, LOG_KV(LOG_STR("kafka", fac)), "%s", msg);
+    if (!log_enabled(&s->log_bus, l))
+        return;
+    /* Every librdkafka line comes through this one call site: key the rate
+     * limiter by facility and text, so that distinct errors are not
+     * counted as one ("suppressed N similar messages (like "%s")") while a
+     * repeated one is still held back. */
+    char key[256];
+    snprintf(key, sizeof key, "%s %s", fac, msg);
+    log_at_keyed_kv(&s->log_bus, l, key, LOG_KV(LOG_STR("kafka", fac)), "%s", msg);
 }
 
 /* ---- status ----------------------------------------------------------------- */

@@ -218,6 +218,76 @@ static void test_rate_limit(void **state)
     assert_int_equal(log_sink_flush_suppressed(&c->sink), 0);
 }
 
+/* Lines relayed through one "%s" call site (librdkafka's, in the bus)
+ * are limited per key text, digits folded. */
+static void test_rate_limit_keyed(void **state)
+{
+    capture *c = *state;
+    char key[160], msg[128];
+    c->sink.limit_burst = 3;
+    c->sink.limit_interval_ms = 1000;
+
+    /* One message repeated with changing numbers is one flood. */
+    for (int i = 0; i < 10; i++) {
+        snprintf(msg, sizeof msg, "Connect to 127.0.0.1:%d failed (after %dms)",
+                 40000 + i, i * 7);
+        snprintf(key, sizeof key, "FAIL %s", msg);
+        log_at_keyed_kv(&c->root, LOG_LEVEL_ERROR, key,
+                        LOG_KV(LOG_STR("kafka", "FAIL")), "%s", msg);
+    }
+    assert_int_equal(c->n, 3);
+
+    /* Distinct messages through the same format keep their own limit. */
+    const char *other[] = {"Coordinator load in progress", "Request timed out",
+                           "Broker transport failure", "Metadata request failed",
+                           "Offset commit failed"};
+    for (int i = 0; i < 5; i++) {
+        snprintf(key, sizeof key, "FAIL %s", other[i]);
+        log_at_keyed_kv(&c->root, LOG_LEVEL_ERROR, key,
+                        LOG_KV(LOG_STR("kafka", "FAIL")), "%s", other[i]);
+    }
+    assert_int_equal(c->n, 8);
+    assert_non_null(strstr(c->lines[7], "Offset commit failed"));
+    /* The same text from another facility is another key. */
+    log_at_keyed_kv(&c->root, LOG_LEVEL_ERROR, "GETPID Request timed out",
+                    LOG_KV(LOG_STR("kafka", "GETPID")), "%s", "Request timed out");
+    assert_int_equal(c->n, 9);
+    /* A format-string key is apart from a text key. */
+    log_error(&c->root, "%s", "Request timed out");
+    assert_int_equal(c->n, 10);
+
+    /* The flood's count comes with its first text. */
+    c->now_ms += 1000;
+    assert_int_equal(log_sink_flush_suppressed(&c->sink), 1);
+    assert_int_equal(c->n, 11);
+    assert_non_null(strstr(c->lines[10], "suppressed 7 similar messages"));
+    assert_non_null(strstr(c->lines[10], "FAIL Connect to 127.0.0.1:40000 failed (after 0ms)"));
+
+    /* A NULL key keys by the format, as log_emit does. */
+    for (int i = 0; i < 5; i++)
+        log_emit_keyed(&c->root, LOG_LEVEL_WARN, NULL, NULL, 0, "slow %d", i);
+    assert_int_equal(c->n, 14);
+}
+
+/* A key longer than the slot keeps its limit; the suppressed line shows
+ * its beginning. */
+static void test_rate_limit_long_key(void **state)
+{
+    capture *c = *state;
+    char key[600];
+    c->sink.limit_burst = 1;
+    c->sink.limit_interval_ms = 1000;
+    memset(key, 'k', sizeof key - 1);
+    key[sizeof key - 1] = '\0';
+    for (int i = 0; i < 4; i++)
+        log_at_keyed_kv(&c->root, LOG_LEVEL_WARN, key, NULL, 0, "%s", "long");
+    assert_int_equal(c->n, 1);
+    c->now_ms += 1000;
+    assert_int_equal(log_sink_flush_suppressed(&c->sink), 1);
+    assert_non_null(strstr(c->lines[1], "suppressed 3 similar messages"));
+    assert_non_null(strstr(c->lines[1], "(like \"kkkk"));
+}
+
 static void test_limit_off(void **state)
 {
     capture *c = *state;
@@ -250,6 +320,8 @@ int main(void)
         cmocka_unit_test_setup_teardown(test_json_line, setup, teardown),
         cmocka_unit_test_setup_teardown(test_long_line_truncated_but_valid, setup, teardown),
         cmocka_unit_test_setup_teardown(test_rate_limit, setup, teardown),
+        cmocka_unit_test_setup_teardown(test_rate_limit_keyed, setup, teardown),
+        cmocka_unit_test_setup_teardown(test_rate_limit_long_key, setup, teardown),
         cmocka_unit_test_setup_teardown(test_limit_off, setup, teardown),
         cmocka_unit_test(test_level_names),
     };
