@@ -87,7 +87,11 @@ static void usage(FILE *out)
         "  --history N       most past detections per packet, 1..64 (default %u)\n"
         "  --rare-rate F     fraction of packets from EACH of the three rare\n"
         "                    populations (fast blue, fast red, slow riser; default %g)\n"
-        "  --start-mjd X     evening of the first night, MJD (default %.1f)\n"
+        "  --start-mjd X     evening of the first night written, MJD (default %.1f)\n"
+        "  --burn-in-nights N  nights the survey runs, unwritten, before that\n"
+        "                    (default %u, the history horizon), so the first packets\n"
+        "                    already carry full histories and prior limits; 0 = the\n"
+        "                    survey starts with the first packet\n"
         "  --format F        json | avro-container | avro-schema-id | avro-bare\n"
         "                    (default json)\n"
         "  --output FILE     write to FILE ('-' = stdout, the default): JSON lines, or\n"
@@ -115,7 +119,7 @@ static void usage(FILE *out)
         "  oddsky simulate --count 1000000 --format avro-container --output n.avro\n"
         "  oddsky simulate --brokers 127.0.0.1:9092 --topic demo-in --rate 2000\n",
         d.history_max, d.history_days, d.seed, d.burst, d.n_fields,
-        d.history_max, d.rare_rate[0], d.start_mjd);
+        d.history_max, d.rare_rate[0], d.start_mjd, d.burn_in_nights);
 }
 
 static int bad_value(const char *opt, const char *val, const char *what)
@@ -151,7 +155,8 @@ static int parse_dbl(const char *s, double lo, double hi, double *out)
 static int parse_args(int argc, char **argv, sim_opts *o, int *done)
 {
     enum { O_SEED = 1000, O_COUNT, O_RATE, O_BURST, O_FIELDS, O_HISTORY,
-           O_RARE, O_START, O_FORMAT, O_OUTPUT, O_BROKERS, O_TOPIC, O_SCHEMA };
+           O_RARE, O_START, O_FORMAT, O_OUTPUT, O_BROKERS, O_TOPIC, O_SCHEMA,
+           O_BURN_IN };
     static const struct option longopts[] = {
         {"seed", required_argument, 0, O_SEED},
         {"count", required_argument, 0, O_COUNT},
@@ -166,6 +171,7 @@ static int parse_args(int argc, char **argv, sim_opts *o, int *done)
         {"brokers", required_argument, 0, O_BROKERS},
         {"topic", required_argument, 0, O_TOPIC},
         {"schema-id", required_argument, 0, O_SCHEMA},
+        {"burn-in-nights", required_argument, 0, O_BURN_IN},
         {"help", no_argument, 0, 'h'},
         {0, 0, 0, 0}};
     uint64_t u;
@@ -226,6 +232,11 @@ static int parse_args(int argc, char **argv, sim_opts *o, int *done)
             if (parse_dbl(optarg, 0.0, 999999.0, &x))
                 return bad_value(flag, optarg, "not an MJD in [0, 999999]");
             o->params.start_mjd = x;
+            break;
+        case O_BURN_IN:
+            if (parse_u64(optarg, 1000, &u))
+                return bad_value(flag, optarg, "not an integer in [0, 1000]");
+            o->params.burn_in_nights = (unsigned)u;
             break;
         case O_FORMAT: {
             int found = -1;

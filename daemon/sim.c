@@ -25,6 +25,7 @@
 #define POGSON 1.0857362047581294   /* 2.5 / ln 10 */
 #define ERR_FLOOR 0.005             /* calibration floor, mag (common practice) */
 #define FIELD_HALF_DEG 1.2          /* half-width of a field */
+#define SURVEY_AGE_DAYS 1000.0      /* survey running before the burn-in (invented) */
 
 static const char sim_schema_text[] =
     "{\"type\":\"record\",\"name\":\"Packet\",\"namespace\":\"oddsky.demo\""
@@ -36,36 +37,38 @@ static const char sim_schema_text[] =
     "\"name\":\"id\",\"type\":\"long\",\"doc\":\"Stable identifier of the s"
     "ource across its packets.\"},{\"name\":\"ra_deg\",\"type\":\"double\","
     "\"doc\":\"Right ascension, degrees (J2000).\"},{\"name\":\"dec_deg\","
-    "\"type\":\"double\",\"doc\":\"Declination, degrees (J2000).\"}]}},{\"n"
-    "ame\":\"obs\",\"type\":{\"type\":\"record\",\"name\":\"Detection\",\"f"
-    "ields\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc\":\"Visit time, M"
-    "JD days.\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Filter: o"
-    "ne of u g r i z y.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\""
-    "Magnitude of the detection.\"},{\"name\":\"mag_err\",\"type\":\"double"
-    "\",\"doc\":\"1-sigma magnitude error.\"},{\"name\":\"quality\",\"type"
-    "\":\"double\",\"doc\":\"Detection quality score, 0 (junk) to 1 (clean)"
-    ".\"},{\"name\":\"field\",\"type\":\"int\",\"doc\":\"Survey field of th"
-    "e visit.\"},{\"name\":\"mover_sep_arcsec\",\"type\":\"double\",\"doc\""
-    ":\"Separation from the predicted position of the nearest known moving "
-    "body, arcsec; 60 when none is within the 60 arcsec search radius.\"}]}"
-    "},{\"name\":\"history\",\"doc\":\"Earlier detections of the same sourc"
-    "e, oldest first (at most 64, none older than the history horizon).\","
-    "\"type\":{\"type\":\"array\",\"items\":{\"type\":\"record\",\"name\":"
-    "\"PastDetection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"double\"},{"
-    "\"name\":\"band\",\"type\":\"string\"},{\"name\":\"mag\",\"type\":\"do"
-    "uble\"},{\"name\":\"mag_err\",\"type\":\"double\"}]}}},{\"name\":\"pri"
-    "or_limit\",\"default\":null,\"doc\":\"The most recent earlier visit of"
-    " this position in which the source was not detected (none older than t"
-    "he history horizon); null when there is none.\",\"type\":[\"null\",{\""
-    "type\":\"record\",\"name\":\"Limit\",\"fields\":[{\"name\":\"mjd\",\"t"
-    "ype\":\"double\",\"doc\":\"Visit time, MJD days.\"},{\"name\":\"band\""
-    ",\"type\":\"string\",\"doc\":\"Filter of that visit.\"},{\"name\":\"ma"
-    "g\",\"type\":\"double\",\"doc\":\"5-sigma limiting magnitude of that v"
-    "isit.\"}]}]},{\"name\":\"truth\",\"doc\":\"Simulated population, for e"
-    "valuation only: models must not read it.\",\"type\":{\"type\":\"enum\""
-    ",\"name\":\"Population\",\"symbols\":[\"sn_thermo\",\"sn_cc\",\"period"
-    "ic\",\"nuclear_drw\",\"flare\",\"moving\",\"artefact\",\"rare_fast_blu"
-    "e\",\"rare_fast_red\",\"rare_slow_riser\"]}}]}";
+    "\"type\":\"double\",\"doc\":\"Declination, degrees (J2000).\"},{\"name"
+    "\":\"first_mjd\",\"type\":\"double\",\"doc\":\"Time of the source's fi"
+    "rst detection in the survey, MJD days (it may precede the history hori"
+    "zon).\"}]}},{\"name\":\"obs\",\"type\":{\"type\":\"record\",\"name\":"
+    "\"Detection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc"
+    "\":\"Visit time, MJD days.\"},{\"name\":\"band\",\"type\":\"string\","
+    "\"doc\":\"Filter: one of u g r i z y.\"},{\"name\":\"mag\",\"type\":\""
+    "double\",\"doc\":\"Magnitude of the detection.\"},{\"name\":\"mag_err"
+    "\",\"type\":\"double\",\"doc\":\"1-sigma magnitude error.\"},{\"name\""
+    ":\"quality\",\"type\":\"double\",\"doc\":\"Detection quality score, 0 "
+    "(junk) to 1 (clean).\"},{\"name\":\"field\",\"type\":\"int\",\"doc\":"
+    "\"Survey field of the visit.\"},{\"name\":\"mover_sep_arcsec\",\"type"
+    "\":\"double\",\"doc\":\"Separation from the predicted position of the "
+    "nearest known moving body, arcsec; 60 when none is within the 60 arcse"
+    "c search radius.\"}]}},{\"name\":\"history\",\"doc\":\"Earlier detecti"
+    "ons of the same source, oldest first (at most 64, none older than the "
+    "history horizon).\",\"type\":{\"type\":\"array\",\"items\":{\"type\":"
+    "\"record\",\"name\":\"PastDetection\",\"fields\":[{\"name\":\"mjd\",\""
+    "type\":\"double\"},{\"name\":\"band\",\"type\":\"string\"},{\"name\":"
+    "\"mag\",\"type\":\"double\"},{\"name\":\"mag_err\",\"type\":\"double\""
+    "}]}}},{\"name\":\"prior_limit\",\"default\":null,\"doc\":\"The most re"
+    "cent earlier visit of this position in which the source was not detect"
+    "ed (none older than the history horizon); null when there is none.\","
+    "\"type\":[\"null\",{\"type\":\"record\",\"name\":\"Limit\",\"fields\":"
+    "[{\"name\":\"mjd\",\"type\":\"double\",\"doc\":\"Visit time, MJD days."
+    "\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Filter of that vi"
+    "sit.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\"5-sigma limiti"
+    "ng magnitude of that visit.\"}]}]},{\"name\":\"truth\",\"doc\":\"Simul"
+    "ated population, for evaluation only: models must not read it.\",\"typ"
+    "e\":{\"type\":\"enum\",\"name\":\"Population\",\"symbols\":[\"sn_therm"
+    "o\",\"sn_cc\",\"periodic\",\"nuclear_drw\",\"flare\",\"moving\",\"arte"
+    "fact\",\"rare_fast_blue\",\"rare_fast_red\",\"rare_slow_riser\"]}}]}";
 
 /* ---- the invented instrument ------------------------------------------ */
 
@@ -156,6 +159,8 @@ typedef struct src {
     int64_t ra_q, dec_q;  /* 1e-6 degree */
     uint8_t pop;
     uint16_t hist_n, hist_head;
+    uint8_t seen;         /* detected at least once */
+    int64_t first_ud;     /* its first detection (when seen) */
     nondet nd;            /* latest visit that did not detect it */
     union {
         struct {
@@ -317,6 +322,7 @@ void sim_params_default(sim_params *p)
     p->history_max = 30;
     p->history_days = 30.0;
     p->clear_fraction = 0.85;
+    p->burn_in_nights = 30;
     p->mix[SIM_POP_SN_THERMO] = 0.12;
     p->mix[SIM_POP_SN_CC] = 0.10;
     p->mix[SIM_POP_PERIODIC] = 0.25;
@@ -361,6 +367,10 @@ int sim_params_check(const sim_params *p, char *err, size_t errlen)
         why = "history_days must be in (0, 1000]";
     if (!why && !(p->clear_fraction > 0.0 && p->clear_fraction <= 1.0))
         why = "clear_fraction must be in (0, 1]";
+    if (!why && p->burn_in_nights > 1000)
+        why = "burn_in_nights must be in [0, 1000]";
+    if (!why && !(p->start_mjd - (double)p->burn_in_nights >= 0.0))
+        why = "start_mjd minus burn_in_nights must not be negative";
     if (why) {
         if (err && errlen)
             snprintf(err, errlen, "%s", why);
@@ -476,6 +486,12 @@ static void spawn(sim *s, unsigned slot, double t, int initial)
     /* A new source was not there at the field's previous visit (at the
      * start the survey has not looked yet). */
     o->nd = s->fields[slot / s->p.burst].last;
+    /* Steady sources present at the start have been in the catalogue
+     * since the survey began; everything else is first detected here. */
+    int steady = o->pop == SIM_POP_PERIODIC || o->pop == SIM_POP_NUCLEAR ||
+                 o->pop == SIM_POP_FLARE;
+    o->seen = (uint8_t)(initial && steady);
+    o->first_ud = o->seen ? -quant(SURVEY_AGE_DAYS, UD_PER_DAY) : 0;
     place_source(s, o, slot / s->p.burst);
     switch (o->pop) {
     case SIM_POP_PERIODIC: spawn_periodic(s, o); break;
@@ -533,6 +549,8 @@ static void allocate_slots(sim *s)
     }
 }
 
+static void burn_in(sim *s, unsigned nights);
+
 sim *sim_new(const sim_params *p, char *err, size_t errlen)
 {
     if (sim_params_check(p, err, errlen) != 0)
@@ -542,7 +560,8 @@ sim *sim_new(const sim_params *p, char *err, size_t errlen)
         goto fail_sim;
     s->p = *p;
     rng_seed(&s->r, p->seed);
-    s->start_q = quant(p->start_mjd, UD_PER_DAY);
+    /* Internal time 0 is the evening of the first burn-in night. */
+    s->start_q = quant(p->start_mjd - (double)p->burn_in_nights, UD_PER_DAY);
     s->horizon_ud = quant(p->history_days, UD_PER_DAY);
     s->n_slots = p->n_fields * p->burst;
     s->fields = calloc(p->n_fields, sizeof *s->fields);
@@ -585,6 +604,7 @@ sim *sim_new(const sim_params *p, char *err, size_t errlen)
     s->next_source_id = 1;
     for (unsigned i = 0; i < s->n_slots; i++)
         spawn(s, i, 0.0, 1);
+    burn_in(s, p->burn_in_nights);
     return s;
 
 fail_visits:
@@ -621,7 +641,8 @@ unsigned sim_slots(const sim *s, sim_pop pop)
 
 unsigned sim_night(const sim *s)
 {
-    return s->last_night;
+    unsigned b = s->p.burn_in_nights;
+    return s->last_night >= b ? s->last_night - b : 0;
 }
 
 /* ---- the cadence ---------------------------------------------------------- */
@@ -676,8 +697,13 @@ static void plan_night(sim *s)
 
 /* ---- one slot at one visit ------------------------------------------------ */
 
-static void fill_common(sim *s, const src *o, const visit *v, sim_packet *out)
+static void fill_common(sim *s, src *o, const visit *v, sim_packet *out)
 {
+    if (!o->seen) {
+        o->seen = 1;
+        o->first_ud = v->t_ud;
+    }
+    out->first_mjd = (double)(s->start_q + o->first_ud) / UD_PER_DAY;
     out->packet_id = s->next_packet_id++;
     out->source_id = o->id;
     out->ra_deg = (double)o->ra_q / 1e6;
@@ -793,6 +819,7 @@ static int emit_artefact(sim *s, src *o, unsigned slot, const visit *v,
      * brightness, a ghost of a bright star. */
     o->id = s->next_source_id++;
     o->nd = s->fields[slot / s->p.burst].last;
+    o->seen = 0;
     place_source(s, o, slot / s->p.burst);
     fill_common(s, o, v, out);
     double m5 = s->cur_m5, u = rng_uniform(&s->r), mag, err, q;
@@ -827,6 +854,7 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
         /* A new body at every visit: never linked, so no history. */
         o->id = s->next_source_id++;
         o->nd = s->fields[slot / s->p.burst].last;
+        o->seen = 0;
         place_source(s, o, slot / s->p.burst);
         float off[SIM_NBANDS];
         stellar_offsets(0.45 + 0.08 * rng_normal(&s->r), off);
@@ -893,34 +921,66 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
     return 1;
 }
 
+/* Go on with the current visit: 1 with a packet in *out, 0 when the visit
+ * is done (the next call starts the next visit, which must exist). */
+static int visit_step(sim *s, sim_packet *out)
+{
+    const visit *v = &s->visits[s->vi];
+    if (s->si == 0) {
+        /* Seeing and sky move the visit's limit (invented spread). */
+        double j = 0.2 * rng_normal(&s->r);
+        if (j > 0.6) j = 0.6;
+        if (j < -0.6) j = -0.6;
+        s->cur_m5 = band_m5[v->band] + j;
+        s->cur_t = (double)v->t_ud / UD_PER_DAY;
+    }
+    while (s->si < s->p.burst) {
+        unsigned slot = v->field * s->p.burst + s->si++;
+        if (emit_slot(s, slot, v, out))
+            return 1;
+    }
+    /* Later packets of this field see this visit as its previous one. */
+    nondet *last = &s->fields[v->field].last;
+    last->t_ud = v->t_ud;
+    last->m5_q = (int32_t)quant(s->cur_m5, 1e4);
+    last->band = v->band;
+    last->valid = 1;
+    s->vi++;
+    s->si = 0;
+    return 0;
+}
+
 int sim_next(sim *s, sim_packet *out)
 {
     for (;;) {
         if (s->vi >= s->n_visits)
             plan_night(s);
-        const visit *v = &s->visits[s->vi];
-        if (s->si == 0) {
-            /* Seeing and sky move the visit's limit (invented spread). */
-            double j = 0.2 * rng_normal(&s->r);
-            if (j > 0.6) j = 0.6;
-            if (j < -0.6) j = -0.6;
-            s->cur_m5 = band_m5[v->band] + j;
-            s->cur_t = (double)v->t_ud / UD_PER_DAY;
-        }
-        while (s->si < s->p.burst) {
-            unsigned slot = v->field * s->p.burst + s->si++;
-            if (emit_slot(s, slot, v, out))
-                return 0;
-        }
-        /* Later packets of this field see this visit as its previous one. */
-        nondet *last = &s->fields[v->field].last;
-        last->t_ud = v->t_ud;
-        last->m5_q = (int32_t)quant(s->cur_m5, 1e4);
-        last->band = v->band;
-        last->valid = 1;
-        s->vi++;
-        s->si = 0;
+        if (visit_step(s, out))
+            return 0;
     }
+}
+
+/* Run the survey through its first `nights` nights without emitting, so
+ * the first packet comes from a survey in its stride: histories and prior
+ * limits filled, transients at every phase.  Stops before the first visit
+ * of night `nights` or later (clouded nights are skipped as usual). */
+static void burn_in(sim *s, unsigned nights)
+{
+    sim_packet tmp;
+    if (nights == 0)
+        return;
+    for (;;) {
+        if (s->vi >= s->n_visits) {
+            if (s->night >= nights)
+                break;
+            plan_night(s);
+            if (s->last_night >= nights)
+                break;  /* its visits are still to come */
+        }
+        while (visit_step(s, &tmp))
+            ;
+    }
+    s->next_packet_id = 1;
 }
 
 /* ---- encoders --------------------------------------------------------------- */
@@ -1016,6 +1076,8 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
     o = put_dbl(o, p->ra_deg, 6, 1e6);
     o = put_lit(o, ",\"dec_deg\":");
     o = put_dbl(o, p->dec_deg, 6, 1e6);
+    o = put_lit(o, ",\"first_mjd\":");
+    o = put_dbl(o, p->first_mjd, 6, 1e6);
     o = put_lit(o, "},\"obs\":{\"mjd\":");
     o = put_dbl(o, p->mjd, 6, 1e6);
     o = put_lit(o, ",\"band\":\"");
@@ -1114,6 +1176,7 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
     o = av_long(o, p->source_id);
     o = av_double(o, p->ra_deg);
     o = av_double(o, p->dec_deg);
+    o = av_double(o, p->first_mjd);
     o = av_double(o, p->mjd);
     o = av_band(o, p->band);
     o = av_double(o, p->mag);

@@ -77,12 +77,15 @@ typedef enum sim_pop {
 
 typedef struct sim_params {
     uint64_t seed;
-    double start_mjd;          /* evening of the first night */
+    double start_mjd;          /* evening of the first emitted night */
     unsigned n_fields;         /* fields on the sky (default 500) */
     unsigned burst;            /* source slots per field ~ packets per visit */
     unsigned history_max;      /* past detections per packet, <= 64 */
     double history_days;       /* history horizon (default 30) */
     double clear_fraction;     /* fraction of nights with usable sky */
+    unsigned burn_in_nights;   /* nights run, unseen, before start_mjd (default
+                                * 30, the history horizon): the first packet
+                                * comes from a survey already in its stride */
     /* Relative weights of the common populations (normalised; default
      * sn_thermo .12, sn_cc .10, periodic .25, nuclear .20, flare .10,
      * moving .13, artefact .10). */
@@ -105,6 +108,7 @@ typedef struct sim_packet {
     int64_t packet_id;   /* 1, 2, 3 ... in emission order */
     int64_t source_id;   /* stable for a source across its packets */
     double ra_deg, dec_deg;
+    double first_mjd;    /* the source's first detection in the survey */
     double mjd;          /* visit time */
     uint8_t band;
     double mag, mag_err;

@@ -36,9 +36,10 @@
 /* One demo packet with a short history (all six bands, one error 0, a
  * repeated band), as JSON; the Avro form is encoded from it below. */
 static const char packet_json[] =
-    "{\"packet_id\":123,\"source\":{\"id\":77,\"ra_deg\":10.5,\"dec_deg\":-3.25},"
+    "{\"packet_id\":123,\"source\":{\"id\":77,\"ra_deg\":10.5,\"dec_deg\":-3.25,"
+    "\"first_mjd\":59001.5},"
     "\"obs\":{\"mjd\":60010.25,\"band\":\"r\",\"mag\":19.5,\"mag_err\":0.05,"
-    "\"quality\":0.9,\"field\":4},\"history\":["
+    "\"quality\":0.9,\"field\":4,\"mover_sep_arcsec\":60.0},\"history\":["
     "{\"mjd\":60001.0,\"band\":\"g\",\"mag\":20.1,\"mag_err\":0.1},"
     "{\"mjd\":60002.0,\"band\":\"r\",\"mag\":19.9,\"mag_err\":0.08},"
     "{\"mjd\":60003.5,\"band\":\"i\",\"mag\":19.7,\"mag_err\":0.0},"
@@ -48,6 +49,7 @@ static const char packet_json[] =
     "{\"mjd\":60007.0,\"band\":\"u\",\"mag\":21.0,\"mag_err\":0.3},"
     "{\"mjd\":60008.0,\"band\":\"y\",\"mag\":18.9,\"mag_err\":0.25},"
     "{\"mjd\":60009.0,\"band\":\"r\",\"mag\":19.4,\"mag_err\":0.06}],"
+    "\"prior_limit\":{\"mjd\":60009.5,\"band\":\"g\",\"mag\":23.1},"
     "\"truth\":\"periodic\"}";
 
 static uint8_t packet_avro[1024];
@@ -94,12 +96,14 @@ static void encode_packet(void)
     n += put_long(p + n, json_integer_value(json_object_get(src, "id")));
     n += put_double(p + n, json_number_value(json_object_get(src, "ra_deg")));
     n += put_double(p + n, json_number_value(json_object_get(src, "dec_deg")));
+    n += put_double(p + n, json_number_value(json_object_get(src, "first_mjd")));
     n += put_double(p + n, json_number_value(json_object_get(obs, "mjd")));
     n += put_string(p + n, json_string_value(json_object_get(obs, "band")));
     n += put_double(p + n, json_number_value(json_object_get(obs, "mag")));
     n += put_double(p + n, json_number_value(json_object_get(obs, "mag_err")));
     n += put_double(p + n, json_number_value(json_object_get(obs, "quality")));
     n += put_long(p + n, json_integer_value(json_object_get(obs, "field")));
+    n += put_double(p + n, json_number_value(json_object_get(obs, "mover_sep_arcsec")));
     json_t *h = json_object_get(r, "history");
     n += put_long(p + n, (int64_t)json_array_size(h));
     for (size_t i = 0; i < json_array_size(h); i++) {
@@ -110,6 +114,11 @@ static void encode_packet(void)
         n += put_double(p + n, json_number_value(json_object_get(e, "mag_err")));
     }
     n += put_long(p + n, 0);
+    json_t *lim = json_object_get(r, "prior_limit");
+    n += put_long(p + n, 1); /* union ["null", Limit]: branch 1 */
+    n += put_double(p + n, json_number_value(json_object_get(lim, "mjd")));
+    n += put_string(p + n, json_string_value(json_object_get(lim, "band")));
+    n += put_double(p + n, json_number_value(json_object_get(lim, "mag")));
     n += put_long(p + n, 2); /* truth: "periodic" */
     packet_avro_len = n;
     json_decref(r);

@@ -168,6 +168,9 @@ static sim *make_sim(uint64_t seed, double rare, unsigned hmax)
         p.rare_rate[i] = rare;
     if (hmax)
         p.history_max = hmax;
+    /* These tests follow the survey from its first visit (every source
+     * and link is seen); test_burn_in covers the default start. */
+    p.burn_in_nights = 0;
     char err[128] = "";
     sim *s = sim_new(&p, err, sizeof err);
     if (!s)
@@ -277,6 +280,13 @@ static void check_order_and_history(unsigned hmax)
             with_limit++;
         }
         assert_true(p.mover_sep_arcsec >= 0.0 && p.mover_sep_arcsec <= SIM_MOVER_RADIUS);
+        /* The first detection is this one or earlier than all history. */
+        assert_true(p.first_mjd <= p.mjd);
+        if (p.n_hist)
+            assert_true(p.first_mjd <= p.hist[0].mjd);
+        else if (p.truth != SIM_POP_PERIODIC && p.truth != SIM_POP_NUCLEAR &&
+                 p.truth != SIM_POP_FLARE && seen[p.source_id].mjd == 0)
+            assert_true(p.first_mjd == p.mjd);  /* a new transient, mover or artefact */
         /* The newest history point is this source's previous packet. */
         assert_true(p.source_id > 0 && p.source_id < id_cap);
         last_seen *ls = &seen[p.source_id];
@@ -446,6 +456,7 @@ static void check_json(const sim_packet *p, const char *txt, int n)
     assert_int_equal(json_integer_value(json_object_get(src, "id")), p->source_id);
     assert_true(json_real_value(json_object_get(src, "ra_deg")) == p->ra_deg);
     assert_true(json_real_value(json_object_get(src, "dec_deg")) == p->dec_deg);
+    assert_true(json_real_value(json_object_get(src, "first_mjd")) == p->first_mjd);
     assert_true(json_real_value(json_object_get(obs, "mjd")) == p->mjd);
     assert_true(json_real_value(json_object_get(obs, "mag")) == p->mag);
     assert_true(json_real_value(json_object_get(obs, "mag_err")) == p->mag_err);
@@ -514,6 +525,7 @@ static void check_avro_value(const sim_packet *p, avro_value_t *v)
     assert_int_equal(rec_long(&src, "id"), p->source_id);
     assert_true(rec_double(&src, "ra_deg") == p->ra_deg);
     assert_true(rec_double(&src, "dec_deg") == p->dec_deg);
+    assert_true(rec_double(&src, "first_mjd") == p->first_mjd);
     assert_int_equal(avro_value_get_by_name(v, "obs", &obs, NULL), 0);
     assert_true(rec_double(&obs, "mjd") == p->mjd);
     assert_true(rec_double(&obs, "mag") == p->mag);
@@ -553,6 +565,51 @@ static void check_avro_value(const sim_packet *p, avro_value_t *v)
     int e = -1;
     assert_int_equal(avro_value_get_enum(&truth, &e), 0);
     assert_int_equal(e, (int)p->truth);
+}
+
+static void test_burn_in(void **state)
+{
+    (void)state;
+    /* Default params: the survey has run burn_in_nights (30) before the
+     * first packet, which is packet 1 on night 0 at or after start_mjd,
+     * and already carries history (some of it before start_mjd) and prior
+     * limits; without burn-in the first packets have neither. */
+    sim_params p;
+    sim_params_default(&p);
+    assert_int_equal(p.burn_in_nights, 30);
+    sim *s = sim_new(&p, NULL, 0);
+    assert_non_null(s);
+    static sim_packet pk;
+    long with_hist = 0, with_limit = 0, hist_before_start = 0;
+    for (int i = 0; i < 2000; i++) {
+        sim_next(s, &pk);
+        assert_int_equal(pk.packet_id, i + 1);
+        assert_true(pk.mjd >= p.start_mjd && pk.mjd < p.start_mjd + 1.0);
+        with_hist += pk.n_hist > 0;
+        with_limit += pk.has_limit;
+        for (unsigned k = 0; k < pk.n_hist; k++)
+            hist_before_start += pk.hist[k].mjd < p.start_mjd;
+    }
+    assert_int_equal(sim_night(s), 0);
+    assert_true(with_hist > 1000);
+    assert_true(hist_before_start > 1000);
+    assert_true(with_limit > 300);
+    sim_free(s);
+
+    p.burn_in_nights = 0;
+    s = sim_new(&p, NULL, 0);
+    assert_non_null(s);
+    for (int i = 0; i < 200; i++) {
+        sim_next(s, &pk);
+        assert_int_equal(pk.n_hist, 0);
+        assert_false(pk.has_limit);
+    }
+    sim_free(s);
+
+    p.burn_in_nights = 1001;
+    char err[128] = "";
+    assert_null(sim_new(&p, err, sizeof err));
+    assert_non_null(strstr(err, "burn_in_nights"));
 }
 
 static void test_schema_file_matches(void **state)
@@ -781,6 +838,7 @@ int main(void)
         cmocka_unit_test(test_full_history_encodes),
         cmocka_unit_test(test_population_rates),
         cmocka_unit_test(test_bazin_populations_brighten_then_fade),
+        cmocka_unit_test(test_burn_in),
         cmocka_unit_test(test_schema_file_matches),
         cmocka_unit_test(test_encodings_decode),
         cmocka_unit_test(test_container_many_blocks),
