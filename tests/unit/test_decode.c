@@ -730,16 +730,16 @@ static void test_demo_packets_every_framing(void **state)
     sim_sync_marker(1, sync);
     packet_features pf[4];
     uint32_t dim = featmap_dim(fm);
-    int j_mag = -1, j_n = -1, j_span = -1;
+    int j_mag = -1, j_lim = -1, j_span = -1;
     for (uint32_t j = 0; j < dim; j++) {
         if (!strcmp(featmap_name(fm, j), "mag"))
             j_mag = (int)j;
-        if (!strcmp(featmap_name(fm, j), "n_points"))
-            j_n = (int)j;
+        if (!strcmp(featmap_name(fm, j), "since_limit_days"))
+            j_lim = (int)j;
         if (!strcmp(featmap_name(fm, j), "span_days"))
             j_span = (int)j;
     }
-    assert_true(j_mag >= 0 && j_n >= 0 && j_span >= 0);
+    assert_true(j_mag >= 0 && j_lim >= 0 && j_span >= 0);
     unsigned seen[MODEL_MAX_DIM] = {0};
     for (int i = 0; i < 3000; i++) {
         sim_packet p;
@@ -769,13 +769,20 @@ static void test_demo_packets_every_framing(void **state)
         }
         /* against the generator's own struct */
         assert_near(pf[0].x[j_mag], p.mag, 0);
-        assert_near(pf[0].x[j_n], (double)p.n_hist + 1.0, 0);
+        /* since_limit_days = obs.mjd minus prior_limit.mjd, missing when
+         * the packet has no prior limit (null) */
+        assert_int_equal(pf[0].missing[j_lim], !p.has_limit);
+        if (p.has_limit)
+            assert_near(pf[0].x[j_lim], p.mjd - p.limit_mjd, 0);
+        /* span_days needs 3 points (min_points), the current one included */
         double lo = p.mjd, hi = p.mjd;
         for (unsigned h = 0; h < p.n_hist; h++) {
             lo = fmin(lo, p.hist[h].mjd);
             hi = fmax(hi, p.hist[h].mjd);
         }
-        assert_near(pf[0].x[j_span], hi - lo, 0);
+        assert_int_equal(pf[0].missing[j_span], p.n_hist + 1 < 3);
+        if (p.n_hist + 1 >= 3)
+            assert_near(pf[0].x[j_span], hi - lo, 0);
         char id[32];
         snprintf(id, sizeof id, "%lld", (long long)p.packet_id);
         assert_string_equal(pf[3].packet_id, id);
