@@ -41,7 +41,7 @@
 #define BUS_HOLD_FLUSH_MS 10
 
 /* Batches of input handled per wake-up before the loop gets its turn. */
-#define BUS_ROUNDS_PER_WAKE 8
+#define BUS_ROUNDS_PER_WAKE 4
 
 struct bus_ticket {
     uint32_t slot;
@@ -64,6 +64,7 @@ typedef struct bus_slot {
     int32_t partition;
     uint32_t gen;
     int assigned;
+    int drained;           /* its queue ran short in this round */
     int dirty;
     int64_t stored;
 } bus_slot;
@@ -508,30 +509,42 @@ static size_t take_from(bus *b, rd_kafka_queue_t *q, uint32_t want, size_t *hand
 
 /* One fair round over the assigned partitions' own queues: each gets an
  * equal share of budget (at least one message), the first one a slot
- * further than last round's. */
+ * further than last round's; what a short queue leaves goes to the
+ * others in further passes.  Taking less than budget means every queue
+ * is empty. */
 static size_t take_round(bus *b, uint32_t budget, size_t *handled)
 {
-    uint32_t active = 0;
-    for (uint32_t i = 0; i < b->nslots; i++)
-        if (b->slots[i].assigned && b->slots[i].q)
-            active++;
-    if (active == 0 || budget == 0)
-        return 0;
-    uint32_t share = budget / active ? budget / active : 1;
-    uint32_t first = b->next_slot;
-    int rotated = 0;
-    size_t taken = 0;
-    for (uint32_t k = 0; k < b->nslots && taken < budget; k++) {
-        uint32_t i = (first + k) % b->nslots;
+    uint32_t hungry = 0;
+    for (uint32_t i = 0; i < b->nslots; i++) {
         bus_slot *sl = &b->slots[i];
-        if (!sl->assigned || !sl->q)
-            continue;
-        if (!rotated) {
-            b->next_slot = (i + 1) % b->nslots;
-            rotated = 1;
+        sl->drained = !sl->assigned || !sl->q;
+        hungry += !sl->drained;
+    }
+    uint32_t first = b->next_slot;
+    for (uint32_t k = 0; k < b->nslots; k++) {
+        if (!b->slots[(first + k) % b->nslots].drained) {
+            b->next_slot = (first + k + 1) % b->nslots;
+            break;
         }
+    }
+    size_t taken = 0;
+    while (hungry > 0 && taken < budget && !b->fatal) {
         uint32_t left = budget - (uint32_t)taken;
-        taken += take_from(b, sl->q, share < left ? share : left, handled);
+        uint32_t share = left / hungry ? left / hungry : 1;
+        for (uint32_t k = 0; k < b->nslots && taken < budget; k++) {
+            bus_slot *sl = &b->slots[(first + k) % b->nslots];
+            if (sl->drained)
+                continue;
+            uint32_t want = budget - (uint32_t)taken;
+            if (share < want)
+                want = share;
+            size_t n = take_from(b, sl->q, want, handled);
+            taken += n;
+            if (n < want) {
+                sl->drained = 1;
+                hungry--;
+            }
+        }
     }
     return taken;
 }
@@ -565,21 +578,26 @@ static void serve_consumer(bus *b)
         }
         size_t handled = 0;
         size_t taken = take_from(b, b->cq, room, &handled);
+        int more = taken == room;
         /* The partitions' input stops at max_in_flight exactly. */
         if (!b->paused && b->in_flight < b->o.max_in_flight) {
             uint64_t below = b->o.max_in_flight - b->in_flight;
             uint32_t budget = room - (uint32_t)taken;
             if (below < budget)
                 budget = (uint32_t)below;
-            taken += take_round(b, budget, &handled);
+            size_t n = take_round(b, budget, &handled);
+            taken += n;
+            more = more || (n > 0 && n == budget);
         }
-        if (taken == 0)
-            return;
-        if (b->cb.on_batch_end)
+        if (taken > 0 && b->cb.on_batch_end)
             b->cb.on_batch_end(b->cb.ctx, b, handled);
         /* Serve delivery reports between batches so offsets move and the
          * producer queue does not fill; this may hold the input. */
-        serve_producer(b);
+        if (taken > 0)
+            serve_producer(b);
+        /* Another round only while the queues gave all that was asked. */
+        if (!more)
+            return;
     }
 }
 
