@@ -23,7 +23,11 @@
  * the source (its time, band and limiting magnitude: a new source's is
  * the field's previous visit) and the separation from the nearest known
  * moving body (most moving objects are known bodies; other sources
- * rarely fall near one by chance).  Photometry is
+ * rarely fall near one by chance) and the source's first detection in the
+ * survey (steady sources present at the start count from a survey begun
+ * long before).  Unless burn_in_nights is 0, the survey runs that many
+ * nights unseen before the first packet, so packet 1 already has full
+ * histories and prior limits.  Photometry is
  * sky-limited: the flux error is constant for a visit, set by its 5-sigma
  * limiting magnitude, and a packet exists only for a detection at
  * SNR >= 5.
