@@ -168,11 +168,12 @@ static int slot_add(bus *b, const char *topic, int32_t part)
     return -1;
 }
 
-/* Detach the partition's queue from the consumer queue and wake the loop
- * through the consumer pipe when it fills.  Must run before the partition
- * is assigned: the fetcher forwards a queue the application has not
- * claimed to the consumer queue when it starts.  Without a queue the
- * partition's messages arrive on the consumer queue, which also works. */
+/* Detach the partition's queue from the consumer queue and have it wake
+ * the loop through the consumer pipe when messages arrive.  Must run
+ * before the partition is assigned: the fetcher forwards a queue the
+ * application has not claimed to the consumer queue when it starts.
+ * Without a queue the partition's messages arrive on the consumer queue,
+ * which also works. */
 static void slot_open_queue(bus *b, bus_slot *sl)
 {
     if (sl->q)
