@@ -21,6 +21,16 @@
  * round trip.  The partitions are read a fair share each, starting one
  * slot further every round.  The consumer queue still gets rebalances and
  * errors, and the messages of a partition that has no slot.
+ *
+ * Window full: when one old result of a partition stays undelivered while
+ * the tracker's window of newer offsets fills, the message that does not
+ * fit is not handed on.  The partition is sought back to that offset (which
+ * purges what librdkafka prefetched after it, so the rest of the batch is
+ * dropped too) and its slot is held: no round reads it until a delivery
+ * moves its window or the partition is reset by a revoke or an assign.
+ * Handing it on untracked would be a hole: the next tracked offset marks
+ * everything between as gaps, done, and the stored offset could pass
+ * results still in flight.
  */
 #include "bus.h"
 
@@ -65,6 +75,7 @@ typedef struct bus_slot {
     uint32_t gen;
     int assigned;
     int drained;           /* its queue ran short in this round */
+    int held;              /* window full: not read until its window moves */
     int dirty;
     int64_t stored;
 } bus_slot;
@@ -159,6 +170,7 @@ static int slot_add(bus *b, const char *topic, int32_t part)
             sl->rkt = NULL;
             sl->assigned = 1;
             sl->dirty = 0;
+            sl->held = 0;
             sl->stored = -1;
             sl->gen++;
             offsets_reset(&b->tracker, i);
@@ -240,6 +252,7 @@ static void ticket_finish(bus *b, bus_ticket *t)
     if (t->offset >= 0 && sl->assigned && sl->gen == t->gen) {
         if (offsets_done(&b->tracker, t->slot, t->offset) == 1) {
             sl->dirty = 1;
+            sl->held = 0; /* the window moved: the partition may go on */
             b->any_dirty = 1;
         }
     }
@@ -375,6 +388,7 @@ static void bus_revoke(bus *b, rd_kafka_topic_partition_list_t *parts, int lost)
         if (s >= 0) {
             slot_close_queue(&b->slots[s]);
             b->slots[s].assigned = 0;
+            b->slots[s].held = 0;
             b->slots[s].gen++;
             offsets_reset(&b->tracker, (uint32_t)s);
         }
@@ -437,8 +451,50 @@ static void serve_producer(bus *b)
     check_pressure(b);
 }
 
+/* The window of slot s is full at m: hold the partition and seek it back
+ * to m->offset, so m and what follows it are fetched again once
+ * deliveries catch up.  Returns 0, or -EIO when the seek could not be
+ * started (the daemon must stop: skipping m would lose it). */
+static int slot_hold(bus *b, int s, const rd_kafka_message_t *m)
+{
+    bus_slot *sl = &b->slots[s];
+    sl->held = 1;
+    b->counters.window_full++;
+    rd_kafka_topic_partition_list_t *l = rd_kafka_topic_partition_list_new(1);
+    rd_kafka_topic_partition_list_add(l, sl->topic, sl->partition)->offset = m->offset;
+    rd_kafka_error_t *e = rd_kafka_seek_partitions(b->consumer, l, 0);
+    /* An asynchronous seek leaves _IN_PROGRESS on a partition it started. */
+    rd_kafka_resp_err_t pe = l->elems[0].err;
+    if (pe == RD_KAFKA_RESP_ERR__IN_PROGRESS)
+        pe = RD_KAFKA_RESP_ERR_NO_ERROR;
+    rd_kafka_topic_partition_list_destroy(l);
+    char why[512];
+    if (e || pe) {
+        snprintf(why, sizeof why,
+                 "%s [%d] offset %lld: window full and the seek back failed: %s",
+                 sl->topic, (int)sl->partition, (long long)m->offset,
+                 e ? rd_kafka_error_string(e) : rd_kafka_err2str(pe));
+        if (e)
+            rd_kafka_error_destroy(e);
+        b->fatal = 1;
+        if (b->cb.on_fatal)
+            b->cb.on_fatal(b->cb.ctx, why);
+        return -EIO;
+    }
+    if (b->cb.on_log) {
+        snprintf(why, sizeof why,
+                 "%s [%d] held at offset %lld: offset %lld still undelivered "
+                 "with the window full",
+                 sl->topic, (int)sl->partition, (long long)m->offset,
+                 (long long)offsets_committable(&b->tracker, (uint32_t)s));
+        b->cb.on_log(b->cb.ctx, 6, "WINDOW", why);
+    }
+    return 0;
+}
+
 /* Hand b->batch[0..n) to the handler, one ticket each.  Returns the
- * messages handed on (errors are logged and dropped). */
+ * messages handed on (errors are logged and dropped, and so are messages
+ * of a held partition: its seek fetches them again). */
 static size_t handle_batch(bus *b, size_t n)
 {
     size_t handled = 0;
@@ -465,6 +521,16 @@ static size_t handle_batch(bus *b, size_t n)
             rd_kafka_message_destroy(m);
             continue;
         }
+        if (b->slots[s].held) {
+            rd_kafka_message_destroy(m);
+            continue;
+        }
+        int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
+        if (rc == -EAGAIN) {
+            slot_hold(b, s, m);
+            rd_kafka_message_destroy(m);
+            continue;
+        }
         b->free_tickets = t->next_free;
         b->in_flight++;
         t->slot = (uint32_t)s;
@@ -477,10 +543,9 @@ static size_t handle_batch(bus *b, size_t n)
         t->failed = 0;
         t->consumed_us = now_us();
         t->broker_ts_ms = rd_kafka_message_timestamp(m, NULL);
-        int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
         if (rc < 0) {
-            /* Below the window (a redelivery) or a full window: the
-             * output is still produced; the offset is not tracked. */
+            /* Below the window (a redelivery): the output is still
+             * produced; the offset is not tracked. */
             t->offset = -1;
             b->counters.untracked++;
         }
@@ -518,7 +583,7 @@ static size_t take_round(bus *b, uint32_t budget, size_t *handled)
     uint32_t hungry = 0;
     for (uint32_t i = 0; i < b->nslots; i++) {
         bus_slot *sl = &b->slots[i];
-        sl->drained = !sl->assigned || !sl->q;
+        sl->drained = !sl->assigned || !sl->q || sl->held;
         hungry += !sl->drained;
     }
     uint32_t first = b->next_slot;
@@ -554,8 +619,9 @@ static void serve_consumer(bus *b)
 {
     for (uint32_t round = 0;; round++) {
         /* rd_kafka_poll() must not serve a queue that carries messages
-         * (librdkafka asserts), and a message taken must be processed: a
-         * dropped one would later look like a gap and be skipped.  So
+         * (librdkafka asserts), and a message taken must be processed
+         * (or its partition sought back to it, see slot_hold): a dropped
+         * one would later look like a gap and be skipped.  So
          * while draining the queues are left alone (the final close
          * serves the revoke), and otherwise a call never takes more
          * messages than there are free tickets.  The consumer queue is
@@ -1022,7 +1088,7 @@ uint32_t bus_partitions(bus *b, bus_partition_info *out, uint32_t n)
         out[k].high = hi;
         out[k].lag = (hi >= 0 && stored >= 0) ? hi - stored : -1;
         out[k].in_flight = offsets_pending(&b->tracker, i);
-        out[k].paused = b->paused;
+        out[k].paused = b->paused || sl->held;
         k++;
     }
     return k;

@@ -107,7 +107,7 @@ typedef struct bus_partition_info {
     int64_t high;        /* high watermark seen, -1 unknown */
     int64_t lag;         /* high - stored, -1 unknown */
     uint32_t in_flight;
-    int paused;
+    int paused;          /* input held, or this partition's window full */
 } bus_partition_info;
 
 typedef struct bus_counters {
@@ -119,6 +119,8 @@ typedef struct bus_counters {
     uint64_t untracked;       /* redeliveries below the window */
     uint64_t consumer_errors;
     uint64_t pauses;          /* times the input was held (back-pressure) */
+    uint64_t window_full;     /* times a partition was held and sought back
+                               * because its offset window was full */
     uint64_t offsets_stored;
     uint64_t purges;          /* stalled producer queues purged (watchdog) */
 } bus_counters;

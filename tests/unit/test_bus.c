@@ -11,8 +11,12 @@
  * - a broker outage longer than message.timeout.ms and the consumer
  *   session, with the input held when it starts, ends with every input
  *   offset handed on and stored, results produced again and nothing
- *   failed.
- * Both are timing-based, so they are skipped under valgrind.
+ *   failed;
+ * - one result held undelivered (its topic has no leader) while its
+ *   partition's offset window fills: the partition is held and sought
+ *   back, nothing is stored past an undelivered result at any tick, and
+ *   every input offset is handed on, none untracked.
+ * All are timing-based, so they are skipped under valgrind.
  */
 #include <setjmp.h>
 #include <stdarg.h>
@@ -52,7 +56,16 @@ typedef struct fixture {
     uint64_t down_after_total; /* set the broker down after this many (0: never) */
     int broker_down, was_down;
     int bus_open;
+    /* the window-full scenario: one result goes to a leaderless topic */
+    int hold;                 /* hold the result of partition 0, HOLD_OFFSET */
+    rd_kafka_topic_t *slow;
+    uint8_t *delivered[PARTS];/* per input offset: on_done seen */
+    uint64_t full_at_ms;      /* first tick that saw window_full */
+    int released, saw_held;
+    uint64_t stored_past_undelivered; /* ticks that broke the invariant */
 } fixture;
+
+#define HOLD_OFFSET 10
 
 static uint64_t mono_ms(void)
 {
@@ -90,9 +103,69 @@ static void on_message(void *ctx, bus *b, const rd_kafka_message_t *m, bus_ticke
         memcpy(f->share_at_half, f->handled, sizeof f->handled);
         f->have_share = 1;
     }
-    if (bus_produce(b, t, f->out, m->key, m->key_len, m->payload, m->len, NULL, 0,
+    rd_kafka_topic_t *to = f->out;
+    if (f->hold && m->partition == 0 && m->offset == HOLD_OFFSET)
+        to = f->slow;
+    if (m->partition >= 0 && m->partition < PARTS && m->offset >= 0 &&
+        (uint64_t)m->offset < f->per_part)
+        bus_ticket_set_tag(t, (int)((uint64_t)m->partition * f->per_part +
+                                    (uint64_t)m->offset) + 1);
+    if (bus_produce(b, t, to, m->key, m->key_len, m->payload, m->len, NULL, 0,
                     err, sizeof err) != 0)
         bus_ticket_fail(b, t, err);
+}
+
+static void on_done(void *ctx, int64_t latency_us, int64_t broker_ts_ms, int tag)
+{
+    fixture *f = ctx;
+    (void)latency_us;
+    (void)broker_ts_ms;
+    if (tag <= 0)
+        return;
+    uint64_t k = (uint64_t)tag - 1;
+    f->delivered[k / f->per_part][k % f->per_part] = 1;
+}
+
+/* No partition's offset to store is past an input whose result is not
+ * delivered yet; the window-full scenario's hold is lifted a while after
+ * the bus first held a partition. */
+static void check_stored(fixture *f, uint64_t now)
+{
+    bus_partition_info pi[PARTS];
+    uint32_t n = bus_partitions(f->b, pi, PARTS);
+    for (uint32_t i = 0; i < n; i++) {
+        int32_t p = pi[i].partition;
+        if (p < 0 || p >= PARTS)
+            continue;
+        for (int64_t o = 0; o < pi[i].stored && (uint64_t)o < f->per_part; o++)
+            if (!f->delivered[p][o]) {
+                print_message("partition %d stored %lld past undelivered %lld\n", p,
+                              (long long)pi[i].stored, (long long)o);
+                f->stored_past_undelivered++;
+                break;
+            }
+        if (p == 0 && pi[i].paused && !f->released)
+            f->saw_held = 1;
+    }
+    if (!f->hold || f->released)
+        return;
+    if (!f->full_at_ms && bus_get_counters(f->b)->window_full > 0)
+        f->full_at_ms = now;
+    if (f->full_at_ms && now >= f->full_at_ms + 500) {
+        /* Commits ran every 100 ms while the partition was held: the group
+         * must not have moved past the undelivered result (the seek back
+         * stores nothing). */
+        rd_kafka_topic_partition_list_t *l = rd_kafka_topic_partition_list_new(1);
+        rd_kafka_topic_partition_list_add(l, "in", 0);
+        assert_int_equal(rd_kafka_committed(bus_consumer(f->b), l, 5000), 0);
+        print_message("partition 0 committed %lld while held\n",
+                      (long long)l->elems[0].offset);
+        if (l->elems[0].offset > HOLD_OFFSET)
+            f->stored_past_undelivered++;
+        rd_kafka_topic_partition_list_destroy(l);
+        assert_int_equal(rd_kafka_mock_partition_set_leader(f->mc, "slow", 0, 1), 0);
+        f->released = 1;
+    }
 }
 
 static void on_fatal(void *ctx, const char *why)
@@ -123,6 +196,7 @@ static void on_tick(uv_timer_t *h)
         assert_int_equal(rd_kafka_mock_broker_set_up(f->mc, 1), 0);
         f->broker_down = 0;
     }
+    check_stored(f, now);
     if (f->fatal || now > f->deadline_ms || (!f->broker_down && all_stored(f)))
         uv_stop(&f->loop);
 }
@@ -205,8 +279,10 @@ static int teardown(void **state)
     uv_loop_close(&f->loop);
     rd_kafka_mock_cluster_destroy(f->mc);
     rd_kafka_destroy(f->mock_rk);
-    for (int p = 0; p < PARTS; p++)
+    for (int p = 0; p < PARTS; p++) {
         free(f->seen[p]);
+        free(f->delivered[p]);
+    }
     free(f);
     return 0;
 }
@@ -223,7 +299,9 @@ static void run_bus(fixture *f, uint32_t max_in_flight, const char *const *produ
     char err[512] = "";
     for (int p = 0; p < PARTS; p++) {
         f->seen[p] = calloc(f->per_part, 1);
+        f->delivered[p] = calloc(f->per_part, 1);
         assert_non_null(f->seen[p]);
+        assert_non_null(f->delivered[p]);
     }
     fill_input(f, "in");
     bus_opts o = {
@@ -239,11 +317,16 @@ static void run_bus(fixture *f, uint32_t max_in_flight, const char *const *produ
         .max_in_flight = max_in_flight,
         .poll_interval_ms = 20,
     };
-    bus_callbacks cb = {.ctx = f, .on_message = on_message, .on_fatal = on_fatal};
+    bus_callbacks cb = {.ctx = f, .on_message = on_message, .on_done = on_done,
+                        .on_fatal = on_fatal};
     assert_int_equal(bus_new(&f->loop, &o, &cb, &f->b, err, sizeof err), 0);
     f->bus_open = 1;
     f->out = bus_output_topic(f->b, "out");
     assert_non_null(f->out);
+    if (f->hold) {
+        f->slow = bus_output_topic(f->b, "slow");
+        assert_non_null(f->slow);
+    }
     uv_timer_init(&f->loop, &f->tick);
     f->tick.data = f;
     f->start_ms = mono_ms();
@@ -317,6 +400,38 @@ static void broker_outage_longer_than_the_retry_window(void **state)
     close_bus(f);
 }
 
+static void full_window_holds_the_partition_and_skips_nothing(void **state)
+{
+    fixture *f = *state;
+    if (!f)
+        skip();
+    /* 2,000 per partition, 200 in flight, 64 a batch: partition 0's window
+     * (328 offsets) fills while the result of its offset 10 waits for a
+     * leader, which comes 0.5 s after the bus first held it. */
+    assert_int_equal(rd_kafka_mock_topic_create(f->mc, "slow", 1, 1), 0);
+    assert_int_equal(rd_kafka_mock_partition_set_leader(f->mc, "slow", 0, -1), 0);
+    f->per_part = 2000;
+    f->hold = 1;
+    run_bus(f, 200, NULL, 0, 30);
+    const bus_counters *bc = bus_get_counters(f->b);
+    print_message("window full %llu times, untracked %llu, ticks past undelivered %llu\n",
+                  (unsigned long long)bc->window_full, (unsigned long long)bc->untracked,
+                  (unsigned long long)f->stored_past_undelivered);
+    assert_int_equal(f->fatal, 0);
+    assert_true(f->released);
+    assert_true(f->saw_held);
+    assert_true(bc->window_full > 0);
+    assert_int_equal(bc->untracked, 0);
+    assert_int_equal(f->stored_past_undelivered, 0);
+    assert_true(all_stored(f));
+    for (int p = 0; p < PARTS; p++)
+        for (uint32_t o = 0; o < f->per_part; o++) {
+            assert_int_equal(f->seen[p][o], 1);
+            assert_int_equal(f->delivered[p][o], 1);
+        }
+    close_bus(f);
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -324,6 +439,8 @@ int main(void)
                                         teardown),
         cmocka_unit_test_setup_teardown(broker_outage_longer_than_the_retry_window, setup,
                                         teardown),
+        cmocka_unit_test_setup_teardown(full_window_holds_the_partition_and_skips_nothing,
+                                        setup, teardown),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
