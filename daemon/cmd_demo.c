@@ -3,6 +3,7 @@
  * installed: an in-memory Kafka cluster, the simulated survey feeding it,
  * the daemon scoring it and the status page showing it.
  */
+#include <errno.h>
 #include <jansson.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -16,6 +17,7 @@
 #include "embedded.h"
 #include "log.h"
 #include "service.h"
+#include "sim.h"
 
 #define MAX_SETS 256
 #define DEMO_IN "oddsky-demo-packets"
@@ -141,18 +143,34 @@ int cmd_demo(int argc, char **argv)
         embedded_stop(e);
         return EX_CANTCREAT;
     }
+    /* The feeder frames packets with a schema id (byte 0, a 4-byte id,
+     * bare Avro): a container per message would carry the schema text in
+     * every message, and the in-memory bus keeps only a few megabytes per
+     * partition.  The schema goes next to the checkpoint. */
+    char schema_path[sizeof state_dir + 32];
+    snprintf(schema_path, sizeof schema_path, "%s/%u.avsc", state_dir,
+             (unsigned)EMBEDDED_SCHEMA_ID);
+    FILE *sf = NULL;
+    if (!(sf = fopen(schema_path, "w")) ||
+        fputs(sim_schema_json(), sf) < 0 || fclose(sf) != 0) {
+        fprintf(stderr, "oddsky demo: cannot write %s: %s\n", schema_path,
+                strerror(errno));
+        embedded_stop(e);
+        return EX_CANTCREAT;
+    }
     struct oddsky_config cfg;
     config_errs *errs = calloc(1, sizeof *errs);
     config_init_defaults(&cfg);
     config_errs_init(errs);
-    char text[1024];
+    char text[2048];
     snprintf(text, sizeof text,
              "{\"kafka\": {\"brokers\": \"%s\", \"input_topics\": [\"" DEMO_IN "\"],"
              " \"output_topic\": \"" DEMO_OUT "\", \"flagged_topic\": \"" DEMO_FLAGGED "\","
              " \"dead_letter_topic\": \"" DEMO_DEAD "\", \"group_id\": \"oddsky-demo\"},"
+             " \"input\": {\"schema_dir\": \"%s\"},"
              " \"state\": {\"dir\": \"%s\", \"checkpoint_interval_s\": 30},"
              " \"status\": {\"port\": %ld}}",
-             d.bootstraps, state_dir, port);
+             d.bootstraps, state_dir, state_dir, port);
     config_load_text(&cfg, text, "demo", NULL, errs);
     char fm[1 << 16];
     snprintf(fm, sizeof fm, "featmap=%s", demo_featmap_json);

@@ -31,6 +31,11 @@ embedded *embedded_start(int n_brokers, const embedded_topic *topics,
 /* "127.0.0.1:port,..." of the mock brokers (owned by e). */
 const char *embedded_bootstraps(const embedded *e);
 
+/* Schema id the feeder writes (schema-id framing: byte 0, the 4-byte
+ * big-endian id, bare Avro); the daemon reads <id>.avsc from its schema
+ * dir. */
+#define EMBEDDED_SCHEMA_ID 1u
+
 /* Start feeding simulated packets to topic at rate_per_s (0 = as fast as
  * the producer takes them) with the given seed and rare-population rate,
  * stopping after count packets (0 = until embedded_stop).  Returns 0 or -1
