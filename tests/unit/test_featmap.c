@@ -191,10 +191,11 @@ typedef struct fx {
     packet_features pf;
 } fx;
 
-static int setup(void **state)
+/* A fixture for the feature map in spec_text. */
+static int setup_spec(void **state, const char *spec_text)
 {
     fx *f = calloc(1, sizeof *f);
-    json_t *spec = js(SPEC);
+    json_t *spec = js(spec_text);
     char err[256] = "";
     f->fm = featmap_new(spec, err, sizeof err);
     json_decref(spec);
@@ -206,6 +207,11 @@ static int setup(void **state)
     f->s = featmap_scratch_new(f->fm);
     *state = f;
     return f->s ? 0 : -1;
+}
+
+static int setup(void **state)
+{
+    return setup_spec(state, SPEC);
 }
 
 static int teardown(void **state)
@@ -512,19 +518,7 @@ enum { A_PSLOPE, A_PCOUNT, A_PSTD, A_PLMM, A_PCOUNT6, A_SLOPE, A_CGRAD,
 
 static int setup_add(void **state)
 {
-    fx *f = calloc(1, sizeof *f);
-    json_t *spec = js(SPEC_ADD);
-    char err[256] = "";
-    f->fm = featmap_new(spec, err, sizeof err);
-    json_decref(spec);
-    if (!f->fm) {
-        print_error("featmap_new: %s\n", err);
-        free(f);
-        return -1;
-    }
-    f->s = featmap_scratch_new(f->fm);
-    *state = f;
-    return f->s ? 0 : -1;
+    return setup_spec(state, SPEC_ADD);
 }
 
 static void test_pool_bands(void **state)
