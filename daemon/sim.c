@@ -736,13 +736,13 @@ static void fill_common(sim *s, src *o, const visit *v, sim_packet *out)
     out->mover_sep_arcsec = (double)quant(sep, 1e4) / 1e4;
 }
 
-/* The visit did not detect the source in this slot. */
-static void missed(sim *s, src *o, const visit *v)
+/* Record visit v (at the current limit) as a visit without a detection. */
+static void note_visit(const sim *s, const visit *v, nondet *nd)
 {
-    o->nd.t_ud = v->t_ud;
-    o->nd.m5_q = (int32_t)quant(s->cur_m5, 1e4);
-    o->nd.band = v->band;
-    o->nd.valid = 1;
+    nd->t_ud = v->t_ud;
+    nd->m5_q = (int32_t)quant(s->cur_m5, 1e4);
+    nd->band = v->band;
+    nd->valid = 1;
 }
 
 static void set_phot(sim_packet *out, double mag, double err, double quality)
@@ -912,7 +912,7 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
     }
     }
     if (!measure(s, flux, out)) {
-        missed(s, o, v);
+        note_visit(s, v, &o->nd);  /* the visit did not detect it */
         return 0;
     }
     fill_common(s, o, v, out);
@@ -940,11 +940,7 @@ static int visit_step(sim *s, sim_packet *out)
             return 1;
     }
     /* Later packets of this field see this visit as its previous one. */
-    nondet *last = &s->fields[v->field].last;
-    last->t_ud = v->t_ud;
-    last->m5_q = (int32_t)quant(s->cur_m5, 1e4);
-    last->band = v->band;
-    last->valid = 1;
+    note_visit(s, v, &s->fields[v->field].last);
     s->vi++;
     s->si = 0;
     return 0;
