@@ -27,7 +27,6 @@ struct embedded {
     uint64_t count;
     sim *sim;
     rd_kafka_t *producer;
-    uint8_t sync[16];
 };
 
 embedded *embedded_start(int n_brokers, const embedded_topic *topics,
@@ -140,7 +139,6 @@ int embedded_feed_start(embedded *e, const char *topic, double rate_per_s,
     e->sim = sim_new(&sp, err, err_len);
     if (!e->sim)
         return -1;
-    sim_sync_marker(seed, e->sync);
     char errstr[512];
     rd_kafka_conf_t *conf = rd_kafka_conf_new();
     if (rd_kafka_conf_set(conf, "bootstrap.servers", e->bootstraps, errstr, sizeof errstr) ||
