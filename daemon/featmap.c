@@ -101,6 +101,7 @@ struct featmap {
     /* Numeric root slots reading the same path share one read: canon[i]
      * is the lowest slot with slot i's path (i itself when first). */
     uint16_t canon[FM_SLOTS];
+    uint32_t n_slots;  /* slots in use: SLOT_FIXED_ + 3 per feature */
 };
 
 typedef struct av_step {
@@ -714,6 +715,7 @@ featmap *featmap_new(const json_t *spec, char *err, size_t err_len)
     }
     const json_t *fs = json_object_get(spec, "features");
     fm->dim = (uint32_t)json_array_size(fs);
+    fm->n_slots = SLOT_FIXED_ + 3u * fm->dim;
     for (uint32_t j = 0; j < fm->dim; j++) {
         const json_t *f = json_array_get(fs, j);
         fm_feature *ft = &fm->feat[j];
@@ -1553,7 +1555,7 @@ int featmap_extract_avro(const featmap *fm, const featmap_plan *pl,
         return rc;
 
     /* every numeric root slot: time, current detection, fields, errors */
-    for (uint32_t i = SLOT_TIME; i < FM_SLOTS; i++) {
+    for (uint32_t i = SLOT_TIME; i < fm->n_slots; i++) {
         if (i == SLOT_CUR_B || i == SLOT_HIST)
             continue;
         if (fm->canon[i] != i) {
@@ -1630,7 +1632,7 @@ int featmap_extract_json(const featmap *fm, const json_t *root,
     int rc = ids(fm, st_id, st_src, out);
     if (rc)
         return rc;
-    for (uint32_t i = SLOT_TIME; i < FM_SLOTS; i++) {
+    for (uint32_t i = SLOT_TIME; i < fm->n_slots; i++) {
         if (i == SLOT_CUR_B || i == SLOT_HIST)
             continue;
         if (fm->canon[i] != i) {
