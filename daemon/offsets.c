@@ -77,8 +77,11 @@ static int advance(const offsets_tracker *t, offsets_part *p)
     return moved;
 }
 
-int offsets_track(offsets_tracker *t, uint32_t part, int64_t off)
+int offsets_track_gap(offsets_tracker *t, uint32_t part, int64_t off,
+                      int64_t *gap)
 {
+    if (gap)
+        *gap = 0;
     if (part >= t->nparts || off < 0)
         return -ERANGE;
     offsets_part *p = &t->parts[part];
@@ -88,6 +91,9 @@ int offsets_track(offsets_tracker *t, uint32_t part, int64_t off)
     }
     if (off < p->hi)
         return -ERANGE;
+    /* Measured before a full window of gaps is retired below, which moves
+     * hi up to off. */
+    int64_t skipped = off - p->hi;
     if (off - p->base >= (int64_t)t->cap) {
         /* Gaps alone may have filled the window: retire them first. */
         advance(t, p);
@@ -102,7 +108,21 @@ int offsets_track(offsets_tracker *t, uint32_t part, int64_t off)
     *slot(t, p, off) = SLOT_PENDING;
     p->hi = off + 1;
     p->pending++;
+    if (gap)
+        *gap = skipped;
     return 0;
+}
+
+int offsets_track(offsets_tracker *t, uint32_t part, int64_t off)
+{
+    return offsets_track_gap(t, part, off, NULL);
+}
+
+int64_t offsets_next(const offsets_tracker *t, uint32_t part)
+{
+    if (part >= t->nparts)
+        return -1;
+    return t->parts[part].hi;
 }
 
 int offsets_done(offsets_tracker *t, uint32_t part, int64_t off)

@@ -8,7 +8,10 @@
  * lowest offset not yet done, hi is one past the highest consumed.  The
  * offset safe to store for commit is always base: everything below it is
  * done.  Offsets the consumer never saw (gaps from compaction or
- * transaction markers) count as done.
+ * transaction markers, or input deleted by retention before it was read)
+ * count as done; the tracker does not judge them, but a caller that wants
+ * to count or report them asks offsets_next() before offsets_track(), or
+ * uses offsets_track_gap(), which says how many a call stepped over.
  *
  * The ring has a fixed capacity chosen at creation; when a partition's
  * window is full offsets_track() refuses, and the caller pauses that
@@ -47,6 +50,21 @@ void offsets_reset(offsets_tracker *t, uint32_t part);
  * -ERANGE for an offset below the window (a redelivery: the caller
  * processes it but must not track it) or a bad partition. */
 int offsets_track(offsets_tracker *t, uint32_t part, int64_t off);
+
+/* As offsets_track, and *gap (may be NULL) is set to the offsets between
+ * the previous highest tracked offset of part and off that were never
+ * tracked (marked done by this call): 0 for the next offset in sequence
+ * and for the first offset of a partition (nothing to compare with; see
+ * offsets_next).  *gap is 0 whenever the call does not return 0, so a
+ * refused offset (-EAGAIN) retried later is counted once. */
+int offsets_track_gap(offsets_tracker *t, uint32_t part, int64_t off,
+                      int64_t *gap);
+
+/* The offset expected next on part: one past the highest tracked, or -1
+ * when nothing has been tracked on it since creation or the last reset
+ * (or part is out of range).  An offset above it passed to
+ * offsets_track() skips the ones in between. */
+int64_t offsets_next(const offsets_tracker *t, uint32_t part);
 
 /* Mark a tracked offset done.  Returns 1 when base moved (a new offset
  * can be stored), 0 when it did not, -ERANGE when off is not pending. */
