@@ -31,6 +31,14 @@
  * Handing it on untracked would be a hole: the next tracked offset marks
  * everything between as gaps, done, and the stored offset could pass
  * results still in flight.
+ *
+ * Skipped input: handle_batch compares each tracked offset with the one
+ * its partition expected (offsets_track_gap; for the first message after
+ * an assign, the slot's expect, the committed offset) and counts and logs
+ * the jump (note_skip).  The log line's text carries the numbers, so the
+ * log's rate limiter, which keys relayed lines by facility and text with
+ * digit runs folded, folds a storm into one key per topic; the counters
+ * stay exact.
  */
 #include "bus.h"
 
@@ -78,6 +86,8 @@ typedef struct bus_slot {
     int held;              /* window full: not read until its window moves */
     int dirty;
     int64_t stored;
+    int64_t expect;        /* first offset expected after the assign, the
+                            * committed one; -1 unknown */
 } bus_slot;
 
 struct bus {
@@ -172,6 +182,7 @@ static int slot_add(bus *b, const char *topic, int32_t part)
             sl->dirty = 0;
             sl->held = 0;
             sl->stored = -1;
+            sl->expect = -1;
             sl->gen++;
             offsets_reset(&b->tracker, i);
             return (int)i;
@@ -421,11 +432,21 @@ static void rebalance_cb(rd_kafka_t *rk, rd_kafka_resp_err_t err,
                 slot_open_queue(b, &b->slots[sidx]);
             if (sidx >= 0 && !tp->err && tp->offset >= 0)
                 b->slots[sidx].stored = tp->offset; /* shown until one moves */
+            int64_t committed = tp->err ? RD_KAFKA_OFFSET_INVALID : tp->offset;
+            int64_t start = RD_KAFKA_OFFSET_INVALID;
             if (b->cb.on_assign) {
-                int64_t committed = tp->err ? RD_KAFKA_OFFSET_INVALID : tp->offset;
-                int64_t start = b->cb.on_assign(b->cb.ctx, tp->topic, tp->partition,
-                                                committed);
+                start = b->cb.on_assign(b->cb.ctx, tp->topic, tp->partition,
+                                        committed);
                 tp->offset = start;
+            }
+            /* Input the group has not read starts at the committed offset;
+             * an owner may start earlier to read some again, which skips
+             * nothing unread, or later, which is its own choice. */
+            if (sidx >= 0) {
+                int64_t expect = committed >= 0 ? committed : -1;
+                if (start > expect)
+                    expect = start;
+                b->slots[sidx].expect = expect;
             }
         }
         if (coop)
@@ -492,6 +513,28 @@ static int slot_hold(bus *b, int s, const rd_kafka_message_t *m)
     return 0;
 }
 
+/* Offsets from..from+n-1 of slot s were never received: count them, and
+ * log a jump over more than one (one is a transaction marker). */
+static void note_skip(bus *b, int s, int64_t from, int64_t n, int first)
+{
+    bus_slot *sl = &b->slots[s];
+    b->counters.offsets_skipped += (uint64_t)n;
+    if (n == 1)
+        return;
+    b->counters.skips++;
+    if (!b->cb.on_log)
+        return;
+    char msg[512];
+    snprintf(msg, sizeof msg,
+             "%s [%d]: offsets %lld..%lld (%lld) were never received%s: "
+             "deleted by retention before it was read, compaction, or "
+             "transaction markers",
+             sl->topic, (int)sl->partition, (long long)from,
+             (long long)(from + n - 1), (long long)n,
+             first ? " since the partition was assigned" : "");
+    b->cb.on_log(b->cb.ctx, 4, "SKIPPED", msg);
+}
+
 /* Hand b->batch[0..n) to the handler, one ticket each.  Returns the
  * messages handed on (errors are logged and dropped, and so are messages
  * of a held partition: its seek fetches them again). */
@@ -525,12 +568,19 @@ static size_t handle_batch(bus *b, size_t n)
             rd_kafka_message_destroy(m);
             continue;
         }
-        int rc = offsets_track(&b->tracker, (uint32_t)s, m->offset);
+        int first = offsets_next(&b->tracker, (uint32_t)s) < 0;
+        int64_t gap = 0;
+        int rc = offsets_track_gap(&b->tracker, (uint32_t)s, m->offset, &gap);
         if (rc == -EAGAIN) {
             slot_hold(b, s, m);
             rd_kafka_message_destroy(m);
             continue;
         }
+        if (rc == 0 && first && b->slots[s].expect >= 0 &&
+            m->offset > b->slots[s].expect)
+            gap = m->offset - b->slots[s].expect;
+        if (gap > 0)
+            note_skip(b, s, m->offset - gap, gap, first);
         b->free_tickets = t->next_free;
         b->in_flight++;
         t->slot = (uint32_t)s;

@@ -34,6 +34,19 @@
  * outlives an unassign, and each pause drops the prefetched messages.
  * On revoke, the producer is flushed (bounded by revoke_flush_ms) so the
  * partitions' offsets are stored before they are let go.
+ *
+ * Skipped input: a partition's next message may come with an offset above
+ * the one expected (one past the last message, or for the first message
+ * after an assign the group's committed offset, when the bus looked it up:
+ * with on_assign set).  The offsets between were never received: one per
+ * committed transaction (its marker), compacted records, or input the
+ * broker deleted by retention before the group read it (librdkafka then
+ * resets the position by auto.offset.reset and says nothing to the
+ * application).  Every such offset is counted in offsets_skipped; a jump
+ * of more than one offset is also counted in skips and logged through
+ * on_log at level 4 (warning) with facility "SKIPPED", naming the topic,
+ * the partition and the range.  A jump of one offset (a transaction
+ * marker) is not logged.
  */
 #ifndef ODDSKY_DAEMON_BUS_H
 #define ODDSKY_DAEMON_BUS_H
@@ -123,6 +136,10 @@ typedef struct bus_counters {
                                * because its offset window was full */
     uint64_t offsets_stored;
     uint64_t purges;          /* stalled producer queues purged (watchdog) */
+    uint64_t offsets_skipped; /* offsets never received between the
+                               * messages of a partition (see the top) */
+    uint64_t skips;           /* jumps over more than one offset, each
+                               * logged as a warning */
 } bus_counters;
 
 /* Create and subscribe.  Returns 0 or a negative errno with err filled. */
