@@ -67,7 +67,8 @@ typedef struct service {
     metrics_family *m_packets, *m_results, *m_flags, *m_dead, *m_learned,
         *m_rescored, *m_redelivered, *m_delivery_failed, *m_checkpoints,
         *m_latency, *m_in_flight, *m_lag, *m_threshold, *m_expected,
-        *m_model_bytes, *m_uptime, *m_kafka_time, *m_consumer_errors;
+        *m_model_bytes, *m_uptime, *m_kafka_time, *m_consumer_errors,
+        *m_offsets_skipped, *m_skips, *m_window_full, *m_untracked;
     status_server *status;
     status_provider prov;
     /* Label values of dead_letters_total: every refusal reason, plus
@@ -150,6 +151,10 @@ static int register_metrics(service *s, char *err, size_t len)
         {&s->m_redelivered, {.name = "redeliveries_total", .help = "Outputs produced again after a retriable delivery failure.", .kind = METRICS_COUNTER}},
         {&s->m_delivery_failed, {.name = "delivery_failures_total", .help = "Outputs whose delivery failed for good (the daemon stops).", .kind = METRICS_COUNTER}},
         {&s->m_consumer_errors, {.name = "consumer_errors_total", .help = "Errors reported by the Kafka consumer.", .kind = METRICS_COUNTER}},
+        {&s->m_offsets_skipped, {.name = "input_offsets_skipped_total", .help = "Input offsets never received between consecutive messages of a partition (or after its committed offset): deleted by retention before they were read, compacted, or transaction markers (one per transaction).", .kind = METRICS_COUNTER}},
+        {&s->m_skips, {.name = "input_skips_total", .help = "Jumps over more than one input offset never received (each one logged as a warning with its range).", .kind = METRICS_COUNTER}},
+        {&s->m_window_full, {.name = "input_window_full_total", .help = "Times a partition was held and sought back because its offset window was full (an old result still undelivered).", .kind = METRICS_COUNTER}},
+        {&s->m_untracked, {.name = "input_untracked_total", .help = "Input messages whose offset could not be tracked: redeliveries below the offset window (handled, not stored) and messages of partitions beyond kafka.max_partitions (left for after a restart).", .kind = METRICS_COUNTER}},
         {&s->m_checkpoints, {.name = "checkpoints_total", .help = "Checkpoint writes, by result.", .kind = METRICS_COUNTER,
                              .label = "result", .values = ck_values, .n_values = 2}},
         {&s->m_latency, {.name = "latency_seconds", .help = "Time from consuming a packet to the delivery of its result.", .kind = METRICS_HISTOGRAM,
@@ -702,6 +707,13 @@ static json_t *status_json(void *ctx)
     json_object_set_new(er, "encode", json_integer((json_int_t)pc->encode_errors));
     json_object_set_new(er, "checkpoint", json_integer((json_int_t)metrics_counter_at(s->m_checkpoints, CK_FAILED)->v));
     json_object_set_new(counts, "errors", er);
+    /* What the bus saw of its input besides the messages themselves. */
+    json_t *in = json_object();
+    json_object_set_new(in, "offsets_skipped", json_integer(bc ? (json_int_t)bc->offsets_skipped : 0));
+    json_object_set_new(in, "skips", json_integer(bc ? (json_int_t)bc->skips : 0));
+    json_object_set_new(in, "window_full", json_integer(bc ? (json_int_t)bc->window_full : 0));
+    json_object_set_new(in, "untracked", json_integer(bc ? (json_int_t)bc->untracked : 0));
+    json_object_set_new(counts, "input", in);
     json_object_set_new(d, "counts", counts);
 
     json_object_set_new(d, "model", model_json(s));
@@ -896,6 +908,10 @@ static void on_tick(uv_timer_t *h)
         metrics_counter_at(s->m_redelivered, 0)->v = bc->redelivered;
         metrics_counter_at(s->m_delivery_failed, 0)->v = bc->delivery_failed;
         metrics_counter_at(s->m_consumer_errors, 0)->v = bc->consumer_errors;
+        metrics_counter_at(s->m_offsets_skipped, 0)->v = bc->offsets_skipped;
+        metrics_counter_at(s->m_skips, 0)->v = bc->skips;
+        metrics_counter_at(s->m_window_full, 0)->v = bc->window_full;
+        metrics_counter_at(s->m_untracked, 0)->v = bc->untracked;
         bus_partition_info pi[256];
         uint32_t np = bus_partitions(s->bus, pi, 256);
         double lag = 0;

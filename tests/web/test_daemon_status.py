@@ -146,10 +146,13 @@ def test_status_has_every_documented_field(status):
     for k in ("p50", "p99", "max", "window_s"):
         assert k in status["latency_ms"], k
     assert status["latency_ms"]["window_s"] == 60  # README: "over window_s (60)"
-    for k in ("packets", "results", "flags", "learned", "rescored", "dead_letters", "errors"):
+    for k in ("packets", "results", "flags", "learned", "rescored", "dead_letters", "errors",
+              "input"):
         assert k in status["counts"], k
     assert isinstance(status["counts"]["dead_letters"], dict)
     assert isinstance(status["counts"]["errors"], dict)
+    for k in ("offsets_skipped", "skips", "window_full", "untracked"):
+        assert k in status["counts"]["input"], k
     for k in ("k", "dim", "warm", "learned", "scored", "flagged", "event_time", "bytes",
               "features", "clusters", "sketch_fill", "threshold", "tail_prob_at_threshold",
               "expected_flags_per_night", "score_histogram", "suggested_k"):
@@ -202,6 +205,10 @@ def test_status_counts(status):
     assert status["model"]["learned"] == COUNT
     assert c["flags"] == status["model"]["flagged"]
     assert all(v == 0 for v in c["errors"].values()), c["errors"]
+    # Every offset the feeder produced was received: none skipped (the
+    # in-memory bus deletes input a lagging consumer has not read).
+    assert c["input"]["offsets_skipped"] == 0, c["input"]
+    assert c["input"]["skips"] == 0, c["input"]
 
 
 def test_status_partitions(status):
@@ -330,6 +337,8 @@ def test_metrics_match_status(plain):
     assert one("oddsky_packets_total") == doc["counts"]["packets"] == COUNT
     assert one("oddsky_flags_total") == doc["counts"]["flags"]
     assert one("oddsky_latency_seconds_count") == doc["counts"]["results"]
+    for k in ("offsets_skipped", "skips", "window_full", "untracked"):
+        assert one("oddsky_input_%s_total" % k) == doc["counts"]["input"][k], k
     # source: Prometheus histogram: the +Inf bucket equals _count, buckets
     # are cumulative (non-decreasing in le).
     b = sorted((float(lab["le"]), v) for n, lab, v in samples
