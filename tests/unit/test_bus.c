@@ -15,7 +15,12 @@
  * - one result held undelivered (its topic has no leader) while its
  *   partition's offset window fills: the partition is held and sought
  *   back, nothing is stored past an undelivered result at any tick, and
- *   every input offset is handed on, none untracked.
+ *   every input offset is handed on, none untracked;
+ * - input deleted before the group read it (the mock cluster keeps about
+ *   5 MB per partition and drops its oldest message sets beyond that;
+ *   librdkafka then resets the position to the earliest offset left): the
+ *   offsets between the committed one and the first message received are
+ *   counted as skipped, once, and one warning names the range.
  * All are timing-based, so they are skipped under valgrind.
  */
 #include <setjmp.h>
@@ -432,6 +437,210 @@ static void full_window_holds_the_partition_and_skips_nothing(void **state)
     close_bus(f);
 }
 
+/* ---- input deleted before it was read --------------------------------- */
+
+#define AGED_TOPIC "aged"
+#define AGED_SMALL 10        /* read and committed before the deletion */
+#define AGED_BIG 80          /* 100 KB each: more than the mock keeps */
+#define AGED_BIG_LEN (100 * 1024)
+
+typedef struct aged_run {
+    fixture *f;
+    bus *b;
+    rd_kafka_topic_t *out;
+    int64_t want_stored;     /* stop once partition 0 stored this */
+    int64_t first_offset;    /* of the first message handed on */
+    uint64_t handled;
+    int64_t committed_seen;  /* on_assign's committed argument */
+    int warnings;            /* level-4 SKIPPED lines */
+    char warning[512];
+    uint64_t deadline_ms;
+} aged_run;
+
+static void aged_on_message(void *ctx, bus *b, const rd_kafka_message_t *m,
+                            bus_ticket *t)
+{
+    aged_run *r = ctx;
+    char err[256];
+    if (r->handled++ == 0)
+        r->first_offset = m->offset;
+    if (bus_produce(b, t, r->out, NULL, 0, "r", 1, NULL, 0, err, sizeof err) != 0)
+        bus_ticket_fail(b, t, err);
+}
+
+static int64_t aged_on_assign(void *ctx, const char *topic, int32_t partition,
+                              int64_t committed)
+{
+    aged_run *r = ctx;
+    (void)topic;
+    (void)partition;
+    r->committed_seen = committed;
+    return RD_KAFKA_OFFSET_INVALID; /* the committed offset */
+}
+
+static void aged_on_log(void *ctx, int level, const char *fac, const char *msg)
+{
+    aged_run *r = ctx;
+    if (strcmp(fac, "SKIPPED") != 0)
+        return;
+    print_message("bus log %d %s: %s\n", level, fac, msg);
+    if (level == 4) {
+        r->warnings++;
+        snprintf(r->warning, sizeof r->warning, "%s", msg);
+    }
+}
+
+static void aged_on_fatal(void *ctx, const char *why)
+{
+    aged_run *r = ctx;
+    fprintf(stderr, "fatal: %s\n", why);
+    r->f->fatal = 1;
+}
+
+static void aged_on_tick(uv_timer_t *h)
+{
+    aged_run *r = h->data;
+    bus_partition_info pi[1];
+    uint32_t n = bus_partitions(r->b, pi, 1);
+    int done = n == 1 && pi[0].stored == r->want_stored && bus_in_flight(r->b) == 0;
+    if (r->f->fatal || done || mono_ms() > r->deadline_ms)
+        uv_stop(&r->f->loop);
+}
+
+/* Produce count messages of len bytes to AGED_TOPIC [0], one message set
+ * each. */
+static void aged_produce(fixture *f, uint32_t count, size_t len)
+{
+    char e[256];
+    rd_kafka_conf_t *c = rd_kafka_conf_new();
+    assert_int_equal(rd_kafka_conf_set(c, "bootstrap.servers", f->bootstraps, e, sizeof e),
+                     RD_KAFKA_CONF_OK);
+    assert_int_equal(rd_kafka_conf_set(c, "batch.num.messages", "1", e, sizeof e),
+                     RD_KAFKA_CONF_OK);
+    rd_kafka_t *p = rd_kafka_new(RD_KAFKA_PRODUCER, c, e, sizeof e);
+    assert_non_null(p);
+    char *val = calloc(1, len);
+    assert_non_null(val);
+    for (uint32_t i = 0; i < count; i++) {
+        assert_int_equal(rd_kafka_producev(p, RD_KAFKA_V_TOPIC(AGED_TOPIC),
+                                           RD_KAFKA_V_PARTITION(0),
+                                           RD_KAFKA_V_MSGFLAGS(RD_KAFKA_MSG_F_COPY),
+                                           RD_KAFKA_V_VALUE(val, len), RD_KAFKA_V_END),
+                         0);
+        /* One in flight at a time keeps the message sets apart. */
+        assert_int_equal(rd_kafka_flush(p, 10000), 0);
+    }
+    free(val);
+    rd_kafka_destroy(p);
+}
+
+/* Run a bus on AGED_TOPIC until partition 0 stored want_stored; drain and
+ * close it.  Returns its counters (copied). */
+static bus_counters aged_run_bus(fixture *f, aged_run *r, int64_t want_stored)
+{
+    static const char *const topics[] = {AGED_TOPIC};
+    static const char *const consumer_kv[] = {
+        "session.timeout.ms", "3000", "heartbeat.interval.ms", "300",
+        "auto.commit.interval.ms", "100", "log_level", "3"};
+    char err[512] = "";
+    r->f = f;
+    r->want_stored = want_stored;
+    r->first_offset = -1;
+    r->committed_seen = -12345;
+    bus_opts o = {
+        .brokers = f->bootstraps,
+        .group_id = "g-aged",
+        .topics = topics,
+        .n_topics = 1,
+        .consumer_kv = consumer_kv,
+        .n_consumer_kv = sizeof consumer_kv / sizeof consumer_kv[0] / 2,
+        .poll_batch = 64,
+        .max_in_flight = 200,
+        .poll_interval_ms = 20,
+    };
+    bus_callbacks cb = {.ctx = r, .on_message = aged_on_message,
+                        .on_assign = aged_on_assign, .on_fatal = aged_on_fatal,
+                        .on_log = aged_on_log};
+    assert_int_equal(bus_new(&f->loop, &o, &cb, &r->b, err, sizeof err), 0);
+    f->b = r->b;
+    f->bus_open = 1;
+    r->out = bus_output_topic(r->b, "out");
+    assert_non_null(r->out);
+    uv_timer_init(&f->loop, &f->tick);
+    f->tick.data = r;
+    r->deadline_ms = mono_ms() + 30000;
+    uv_timer_start(&f->tick, aged_on_tick, 20, 20);
+    uv_run(&f->loop, UV_RUN_DEFAULT);
+    uv_close((uv_handle_t *)&f->tick, on_closed);
+    bus_counters c = *bus_get_counters(r->b);
+    bus_partition_info pi[1];
+    uint32_t n = bus_partitions(r->b, pi, 1);
+    print_message("stored %lld (want %lld), handled %llu from offset %lld, "
+                  "skipped %llu offsets in %llu jumps\n",
+                  n ? (long long)pi[0].stored : -1LL, (long long)want_stored,
+                  (unsigned long long)r->handled, (long long)r->first_offset,
+                  (unsigned long long)c.offsets_skipped, (unsigned long long)c.skips);
+    assert_int_equal(n, 1);
+    assert_int_equal(pi[0].stored, want_stored);
+    close_bus(f);
+    uv_run(&f->loop, UV_RUN_DEFAULT);
+    return c;
+}
+
+static void input_deleted_before_it_was_read_is_counted_and_logged(void **state)
+{
+    fixture *f = *state;
+    if (!f)
+        skip();
+    assert_int_equal(rd_kafka_mock_topic_create(f->mc, AGED_TOPIC, 1, 1), 0);
+
+    /* The group reads and commits the first messages: nothing skipped. */
+    aged_produce(f, AGED_SMALL, 16);
+    aged_run first = {0};
+    bus_counters c = aged_run_bus(f, &first, AGED_SMALL);
+    assert_int_equal(f->fatal, 0);
+    assert_int_equal(first.first_offset, 0);
+    assert_int_equal(c.offsets_skipped, 0);
+    assert_int_equal(c.skips, 0);
+    assert_int_equal(first.warnings, 0);
+
+    /* While no member runs, more input arrives than the broker keeps:
+     * the oldest of it, from the committed offset on, is deleted. */
+    aged_produce(f, AGED_BIG, AGED_BIG_LEN);
+    int64_t lo = -1, hi = -1;
+    char e[256];
+    rd_kafka_conf_t *qc = rd_kafka_conf_new();
+    assert_int_equal(rd_kafka_conf_set(qc, "bootstrap.servers", f->bootstraps, e, sizeof e),
+                     RD_KAFKA_CONF_OK);
+    rd_kafka_t *q = rd_kafka_new(RD_KAFKA_PRODUCER, qc, e, sizeof e);
+    assert_non_null(q);
+    assert_int_equal(rd_kafka_query_watermark_offsets(q, AGED_TOPIC, 0, &lo, &hi, 5000), 0);
+    rd_kafka_destroy(q);
+    print_message("after the deletion: low %lld high %lld\n", (long long)lo,
+                  (long long)hi);
+    assert_int_equal(hi, AGED_SMALL + AGED_BIG);
+    assert_true(lo > AGED_SMALL + 1); /* more than one offset lost */
+
+    /* The next member starts at the committed offset, finds it gone and
+     * is reset to the earliest left: every lost offset is counted once,
+     * one warning names the range. */
+    aged_run second = {0};
+    c = aged_run_bus(f, &second, hi);
+    assert_int_equal(f->fatal, 0);
+    assert_int_equal(second.committed_seen, AGED_SMALL);
+    assert_int_equal(second.first_offset, lo);
+    assert_int_equal(second.handled, (uint64_t)(hi - lo));
+    assert_int_equal(c.offsets_skipped, (uint64_t)(lo - AGED_SMALL));
+    assert_int_equal(c.skips, 1);
+    assert_int_equal(second.warnings, 1);
+    char range[128];
+    snprintf(range, sizeof range, AGED_TOPIC " [0]: offsets %d..%lld (%lld)", AGED_SMALL,
+             (long long)(lo - 1), (long long)(lo - AGED_SMALL));
+    print_message("warning: %s\n", second.warning);
+    assert_non_null(strstr(second.warning, range));
+    assert_non_null(strstr(second.warning, "retention"));
+}
+
 int main(void)
 {
     const struct CMUnitTest tests[] = {
@@ -441,6 +650,8 @@ int main(void)
                                         teardown),
         cmocka_unit_test_setup_teardown(full_window_holds_the_partition_and_skips_nothing,
                                         setup, teardown),
+        cmocka_unit_test_setup_teardown(
+            input_deleted_before_it_was_read_is_counted_and_logged, setup, teardown),
     };
     return cmocka_run_group_tests(tests, NULL, NULL);
 }
