@@ -28,47 +28,51 @@
 #define SURVEY_AGE_DAYS 1000.0      /* survey running before the burn-in (invented) */
 
 static const char sim_schema_text[] =
-    "{\"type\":\"record\",\"name\":\"Packet\",\"namespace\":\"oddsky.demo\""
-    ",\"doc\":\"One alert packet of the invented oddsky demo survey: a dete"
-    "ction on a difference image, with the earlier detections of the same s"
-    "ource.\",\"fields\":[{\"name\":\"packet_id\",\"type\":\"long\",\"doc\""
-    ":\"Unique per packet, increasing in emission order.\"},{\"name\":\"sou"
-    "rce\",\"type\":{\"type\":\"record\",\"name\":\"Source\",\"fields\":[{"
-    "\"name\":\"id\",\"type\":\"long\",\"doc\":\"Stable identifier of the s"
-    "ource across its packets.\"},{\"name\":\"ra_deg\",\"type\":\"double\","
-    "\"doc\":\"Right ascension, degrees (J2000).\"},{\"name\":\"dec_deg\","
-    "\"type\":\"double\",\"doc\":\"Declination, degrees (J2000).\"},{\"name"
-    "\":\"first_mjd\",\"type\":\"double\",\"doc\":\"Time of the source's fi"
-    "rst detection in the survey, MJD days (it may precede the history hori"
-    "zon).\"}]}},{\"name\":\"obs\",\"type\":{\"type\":\"record\",\"name\":"
-    "\"Detection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc"
-    "\":\"Visit time, MJD days.\"},{\"name\":\"band\",\"type\":\"string\","
-    "\"doc\":\"Filter: one of u g r i z y.\"},{\"name\":\"mag\",\"type\":\""
-    "double\",\"doc\":\"Magnitude of the detection.\"},{\"name\":\"mag_err"
-    "\",\"type\":\"double\",\"doc\":\"1-sigma magnitude error.\"},{\"name\""
-    ":\"quality\",\"type\":\"double\",\"doc\":\"Detection quality score, 0 "
-    "(junk) to 1 (clean).\"},{\"name\":\"field\",\"type\":\"int\",\"doc\":"
-    "\"Survey field of the visit.\"},{\"name\":\"mover_sep_arcsec\",\"type"
-    "\":\"double\",\"doc\":\"Separation from the predicted position of the "
-    "nearest known moving body, arcsec; 60 when none is within the 60 arcse"
-    "c search radius.\"}]}},{\"name\":\"history\",\"doc\":\"Earlier detecti"
-    "ons of the same source, oldest first (at most 64, none older than the "
-    "history horizon).\",\"type\":{\"type\":\"array\",\"items\":{\"type\":"
-    "\"record\",\"name\":\"PastDetection\",\"fields\":[{\"name\":\"mjd\",\""
-    "type\":\"double\"},{\"name\":\"band\",\"type\":\"string\"},{\"name\":"
-    "\"mag\",\"type\":\"double\"},{\"name\":\"mag_err\",\"type\":\"double\""
-    "}]}}},{\"name\":\"prior_limit\",\"default\":null,\"doc\":\"The most re"
-    "cent earlier visit of this position in which the source was not detect"
-    "ed (none older than the history horizon); null when there is none.\","
-    "\"type\":[\"null\",{\"type\":\"record\",\"name\":\"Limit\",\"fields\":"
-    "[{\"name\":\"mjd\",\"type\":\"double\",\"doc\":\"Visit time, MJD days."
-    "\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Filter of that vi"
-    "sit.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\"5-sigma limiti"
-    "ng magnitude of that visit.\"}]}]},{\"name\":\"truth\",\"doc\":\"Simul"
-    "ated population, for evaluation only: models must not read it.\",\"typ"
-    "e\":{\"type\":\"enum\",\"name\":\"Population\",\"symbols\":[\"sn_therm"
-    "o\",\"sn_cc\",\"periodic\",\"nuclear_drw\",\"flare\",\"moving\",\"arte"
-    "fact\",\"rare_fast_blue\",\"rare_fast_red\",\"rare_slow_riser\"]}}]}";
+    "{\"type\":\"record\",\"name\":\"Packet\",\"namespace\":\"oddsky.demo\",\"doc\":\""
+    "One alert packet of the invented oddsky demo survey: a detection o"
+    "n a difference image, with the earlier detections of the same sour"
+    "ce.\",\"fields\":[{\"name\":\"packet_id\",\"type\":\"long\",\"doc\":\"Unique per"
+    " packet, increasing in emission order.\"},{\"name\":\"source\",\"type\":{"
+    "\"type\":\"record\",\"name\":\"Source\",\"fields\":[{\"name\":\"id\",\"type\":\"lon"
+    "g\",\"doc\":\"Stable identifier of the source across its packets.\"},{\""
+    "name\":\"ra_deg\",\"type\":\"double\",\"doc\":\"Right ascension, degrees (J2"
+    "000).\"},{\"name\":\"dec_deg\",\"type\":\"double\",\"doc\":\"Declination, degr"
+    "ees (J2000).\"},{\"name\":\"first_mjd\",\"type\":\"double\",\"doc\":\"Time of "
+    "the source's first detection in the survey, MJD days (it may prece"
+    "de the history horizon).\"}]}},{\"name\":\"obs\",\"type\":{\"type\":\"record"
+    "\",\"name\":\"Detection\",\"fields\":[{\"name\":\"mjd\",\"type\":\"double\",\"doc\""
+    ":\"Visit time, MJD days.\"},{\"name\":\"band\",\"type\":\"string\",\"doc\":\"Fi"
+    "lter: one of u g r i z y.\"},{\"name\":\"mag\",\"type\":\"double\",\"doc\":\"M"
+    "agnitude of the detection.\"},{\"name\":\"mag_err\",\"type\":\"double\",\"do"
+    "c\":\"1-sigma magnitude error.\"},{\"name\":\"quality\",\"type\":\"double\",\""
+    "doc\":\"Detection quality score, 0 (junk) to 1 (clean).\"},{\"name\":\"f"
+    "ield\",\"type\":\"int\",\"doc\":\"Survey field of the visit.\"},{\"name\":\"mo"
+    "ver_sep_arcsec\",\"type\":\"double\",\"doc\":\"Separation from the predict"
+    "ed position of the nearest known moving body, arcsec; 60 when none"
+    " is within the 60 arcsec search radius.\"}]}},{\"name\":\"history\",\"do"
+    "c\":\"Earlier detections of the same source, oldest first (at most 6"
+    "4, none older than the history horizon).\",\"type\":{\"type\":\"array\",\""
+    "items\":{\"type\":\"record\",\"name\":\"PastDetection\",\"fields\":[{\"name\":\""
+    "mjd\",\"type\":\"double\"},{\"name\":\"band\",\"type\":\"string\"},{\"name\":\"mag"
+    "\",\"type\":\"double\"},{\"name\":\"mag_err\",\"type\":\"double\"}]}}},{\"name\":"
+    "\"prior_limit\",\"default\":null,\"doc\":\"The most recent earlier visit "
+    "of this position in which the source was not detected (none older "
+    "than the history horizon); null when there is none.\",\"type\":[\"null"
+    "\",{\"type\":\"record\",\"name\":\"Limit\",\"fields\":[{\"name\":\"mjd\",\"type\":\""
+    "double\",\"doc\":\"Visit time, MJD days.\"},{\"name\":\"band\",\"type\":\"stri"
+    "ng\",\"doc\":\"Filter of that visit.\"},{\"name\":\"mag\",\"type\":\"double\",\""
+    "doc\":\"5-sigma limiting magnitude of that visit.\"}]}]},{\"name\":\"hos"
+    "t\",\"default\":null,\"doc\":\"The nearest catalogued galaxy within 10 a"
+    "rcsec of the position; null when the catalogue has none there.\",\"t"
+    "ype\":[\"null\",{\"type\":\"record\",\"name\":\"Host\",\"fields\":[{\"name\":\"sep"
+    "_arcsec\",\"type\":\"double\",\"doc\":\"Separation of the position from th"
+    "e galaxy's centre, arcsec.\"},{\"name\":\"dist_mod\",\"type\":\"double\",\"d"
+    "oc\":\"Distance modulus from the galaxy's photometric redshift, mag "
+    "(about 0.3 mag uncertain).\"}]}]},{\"name\":\"truth\",\"doc\":\"Simulated "
+    "population, for evaluation only: models must not read it.\",\"type\":"
+    "{\"type\":\"enum\",\"name\":\"Population\",\"symbols\":[\"sn_thermo\",\"sn_cc\","
+    "\"periodic\",\"nuclear_drw\",\"flare\",\"moving\",\"artefact\",\"rare_fast_bl"
+    "ue\",\"rare_fast_red\",\"rare_slow_riser\"]}}]}";
 
 /* ---- the invented instrument ------------------------------------------ */
 
@@ -90,36 +94,44 @@ static const double pair_weight[7] = {0.25, 0.25, 0.15, 0.10, 0.08, 0.10, 0.07};
  * magnitude range below the r limit, the phase window at spawn (days
  * before peak, days after peak at start-up) and the longest life after
  * peak.  All invented, loosely shaped after the rise times, decline rates
- * and colours of the classes they stand in for. */
+ * and colours of the classes they stand in for.  The peak absolute
+ * magnitudes (which place the host's distance) follow published figures:
+ * thermonuclear M ~ -19.3 and core collapse M ~ -17 with a spread of about
+ * a magnitude (Richardson et al. 2014, AJ 147, 118); fast blue optical
+ * transients -16.5 to -20 and brighter (Drout et al. 2014, ApJ 794, 23),
+ * here the luminous end; a fast-fading red transient near -16, like the
+ * kilonova of 2017 (Cowperthwaite et al. 2017, ApJL 848, L17); slow
+ * luminous risers brighter than -21 (Gal-Yam 2012, Science 337, 927). */
 typedef struct bazin_pop {
     double colour[SIM_NBANDS];
     double fall_factor[SIM_NBANDS];
     double tau_rise[2], tau_fall[2];
     double peak_below_m5[2];  /* peak_r = M5_REF - U(a, b) */
     double before_peak, after_peak_init, max_life;
+    double abs_peak[2];       /* r-band peak absolute magnitude: mean, sd */
 } bazin_pop;
 
 static const bazin_pop bazin_table[SIM_POP_COUNT_] = {
     [SIM_POP_SN_THERMO] = {{0.55, 0.05, 0.0, 0.30, 0.40, 0.50},
                            {0.75, 0.85, 1.0, 1.15, 1.25, 1.30},
                            {1.2, 2.5}, {18.0, 32.0}, {0.4, 3.2},
-                           12.0, 40.0, 120.0},
+                           12.0, 40.0, 120.0, {-19.3, 0.4}},
     [SIM_POP_SN_CC] = {{0.95, 0.35, 0.0, -0.10, -0.15, -0.20},
                        {0.60, 0.80, 1.0, 1.10, 1.15, 1.20},
                        {1.5, 5.0}, {35.0, 90.0}, {0.3, 2.5},
-                       10.0, 80.0, 250.0},
+                       10.0, 80.0, 250.0, {-17.0, 1.0}},
     [SIM_POP_FAST_BLUE] = {{-0.50, -0.30, 0.0, 0.20, 0.35, 0.45},
                            {0.80, 0.90, 1.0, 1.10, 1.20, 1.20},
                            {0.4, 1.0}, {2.0, 5.0}, {1.5, 3.5},
-                           2.0, 5.0, 20.0},
+                           2.0, 5.0, 20.0, {-20.2, 0.5}},
     [SIM_POP_FAST_RED] = {{2.00, 1.00, 0.0, -0.50, -0.80, -1.00},
                           {0.60, 0.80, 1.0, 1.20, 1.30, 1.40},
                           {0.3, 0.8}, {1.5, 4.0}, {1.0, 3.0},
-                          1.5, 4.0, 20.0},
+                          1.5, 4.0, 20.0, {-16.0, 0.5}},
     [SIM_POP_SLOW_RISER] = {{0.60, 0.25, 0.0, -0.05, -0.10, -0.10},
                             {1.0, 1.0, 1.0, 1.0, 1.0, 1.0},
                             {20.0, 40.0}, {150.0, 300.0}, {1.0, 2.8},
-                            90.0, 100.0, 500.0},
+                            90.0, 100.0, 500.0, {-21.5, 0.5}},
 };
 
 /* Colour offsets m_b - m_r of a star along an invented linear locus in g-r. */
@@ -162,6 +174,8 @@ typedef struct src {
     uint8_t seen;         /* detected at least once */
     int64_t first_ud;     /* its first detection (when seen) */
     nondet nd;            /* latest visit that did not detect it */
+    uint8_t has_host;     /* a catalogued galaxy within SIM_HOST_RADIUS */
+    float host_sep, host_mu;  /* its separation (arcsec), distance modulus */
     union {
         struct {
             double t0, t_peak;
@@ -393,6 +407,53 @@ static void place_source(sim *s, src *o, unsigned f)
     o->dec_q = quant(dec, 1e6);
 }
 
+/* Host galaxies (invented rates and spreads).  The catalogue's distance
+ * modulus comes from a photometric redshift, off by a normal 0.3 mag; a
+ * tenth of the transients sit in galaxies below the catalogue's limit; a
+ * random position has a catalogued galaxy within the search radius about
+ * half the time (galaxy counts of order 1e5 per square degree), at a
+ * distance modulus spread around 41. */
+#define HOST_MU_ERR 0.3
+#define HOSTLESS_SHARE 0.12
+#define CHANCE_GALAXY_SHARE 0.5
+
+static void host_set(sim *s, src *o, double sep, double mu)
+{
+    if (sep > SIM_HOST_RADIUS)
+        sep = SIM_HOST_RADIUS;
+    if (sep < 0.01)
+        sep = 0.01;  /* astrometric floor (invented) */
+    o->has_host = 1;
+    o->host_sep = (float)sep;
+    o->host_mu = (float)(mu + HOST_MU_ERR * rng_normal(&s->r));
+}
+
+/* A galaxy by chance near a star, a moving body or an artefact. */
+static void host_chance(sim *s, src *o)
+{
+    o->has_host = 0;
+    if (rng_uniform(&s->r) < CHANCE_GALAXY_SHARE)
+        host_set(s, o, SIM_HOST_RADIUS * sqrt(rng_uniform(&s->r)),
+                 41.0 + 1.5 * rng_normal(&s->r));
+}
+
+/* A transient in a galaxy at distance modulus mu, offset from its centre
+ * by a Gamma(2) radius whose scale shrinks with distance (0.5 arcsec at
+ * mu = 40); nuclear: within about 0.1 arcsec of the centre. */
+static void host_own(sim *s, src *o, double mu, int nuclear)
+{
+    o->has_host = 0;
+    if (nuclear) {
+        host_set(s, o, 0.1 * sqrt(-2.0 * log1p(-rng_uniform(&s->r))), mu);
+        return;
+    }
+    if (rng_uniform(&s->r) < HOSTLESS_SHARE)
+        return;
+    double scale = 0.5 * pow(10.0, -(mu - 40.0) / 5.0);
+    double sep = -scale * (log1p(-rng_uniform(&s->r)) + log1p(-rng_uniform(&s->r)));
+    host_set(s, o, sep, mu);
+}
+
 static double bazin_rflux(const src *o, double t)
 {
     return o->m.bz.amp[2] * sim_bazin_flux(t, 1.0, 0.0, o->m.bz.t0,
@@ -408,6 +469,7 @@ static void spawn_bazin(sim *s, src *o, double t, int initial)
     double tr = uni(s, bp->tau_rise[0], bp->tau_rise[1]);
     double tf = uni(s, bp->tau_fall[0], bp->tau_fall[1]);
     double peak_r = M5_REF - uni(s, bp->peak_below_m5[0], bp->peak_below_m5[1]);
+    host_own(s, o, peak_r - (bp->abs_peak[0] + bp->abs_peak[1] * rng_normal(&s->r)), 0);
     for (unsigned b = 0; b < SIM_NBANDS; b++) {
         double trb = tr * (1.0 + 0.05 * rng_normal(&s->r));
         double tfb = tf * bp->fall_factor[b];
@@ -463,6 +525,9 @@ static void spawn_nuclear(sim *s, src *o, double t)
     o->m.drw.sigma = uni(s, 0.08, 0.30);
     o->m.drw.x = o->m.drw.sigma * rng_normal(&s->r);  /* stationary start */
     o->m.drw.t_last = t;
+    /* Nuclear variability in galaxies of absolute magnitude -20 to -23
+     * (invented range). */
+    host_own(s, o, mean_r - uni(s, -23.0, -20.0), 1);
 }
 
 static void spawn_flare(sim *s, src *o)
@@ -494,9 +559,9 @@ static void spawn(sim *s, unsigned slot, double t, int initial)
     o->first_ud = o->seen ? -quant(SURVEY_AGE_DAYS, UD_PER_DAY) : 0;
     place_source(s, o, slot / s->p.burst);
     switch (o->pop) {
-    case SIM_POP_PERIODIC: spawn_periodic(s, o); break;
+    case SIM_POP_PERIODIC: spawn_periodic(s, o); host_chance(s, o); break;
     case SIM_POP_NUCLEAR: spawn_nuclear(s, o, t); break;
-    case SIM_POP_FLARE: spawn_flare(s, o); break;
+    case SIM_POP_FLARE: spawn_flare(s, o); host_chance(s, o); break;
     case SIM_POP_MOVING:
     case SIM_POP_ARTEFACT: break;  /* drawn afresh at every visit */
     default: spawn_bazin(s, o, t, initial); break;
@@ -734,6 +799,9 @@ static void fill_common(sim *s, src *o, const visit *v, sim_packet *out)
             sep = SIM_MOVER_RADIUS;
     }
     out->mover_sep_arcsec = (double)quant(sep, 1e4) / 1e4;
+    out->has_host = o->has_host;
+    out->host_sep_arcsec = o->has_host ? (double)quant(o->host_sep, 1e4) / 1e4 : 0.0;
+    out->host_dist_mod = o->has_host ? (double)quant(o->host_mu, 1e4) / 1e4 : 0.0;
 }
 
 /* Record visit v (at the current limit) as a visit without a detection. */
@@ -821,6 +889,7 @@ static int emit_artefact(sim *s, src *o, unsigned slot, const visit *v,
     o->nd = s->fields[slot / s->p.burst].last;
     o->seen = 0;
     place_source(s, o, slot / s->p.burst);
+    host_chance(s, o);
     fill_common(s, o, v, out);
     double m5 = s->cur_m5, u = rng_uniform(&s->r), mag, err, q;
     if (u < 0.5) {
@@ -856,6 +925,7 @@ static int emit_slot(sim *s, unsigned slot, const visit *v, sim_packet *out)
         o->nd = s->fields[slot / s->p.burst].last;
         o->seen = 0;
         place_source(s, o, slot / s->p.burst);
+        host_chance(s, o);
         float off[SIM_NBANDS];
         stellar_offsets(0.45 + 0.08 * rng_normal(&s->r), off);
         double mr = M5_REF - uni(s, 0.2, 3.2);
@@ -1060,7 +1130,7 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
     if (p->n_hist > SIM_HISTORY_CAP || !band_ok(p->band) ||
         (int)p->truth < 0 || p->truth >= SIM_POP_COUNT_)
         return -1;
-    size_t need = 560 + (size_t)p->n_hist * 110;
+    size_t need = 660 + (size_t)p->n_hist * 110;
     if (cap < need)
         return -1;
     char *o = buf;
@@ -1112,9 +1182,18 @@ int sim_encode_json(const sim_packet *p, char *buf, size_t cap)
         *o++ = band_letter[p->limit_band][0];
         o = put_lit(o, "\",\"mag\":");
         o = put_dbl(o, p->limit_mag, 4, 1e4);
+        o = put_lit(o, "}");
+    } else {
+        o = put_lit(o, "],\"prior_limit\":null");
+    }
+    if (p->has_host) {
+        o = put_lit(o, ",\"host\":{\"sep_arcsec\":");
+        o = put_dbl(o, p->host_sep_arcsec, 4, 1e4);
+        o = put_lit(o, ",\"dist_mod\":");
+        o = put_dbl(o, p->host_dist_mod, 4, 1e4);
         o = put_lit(o, "},\"truth\":\"");
     } else {
-        o = put_lit(o, "],\"prior_limit\":null,\"truth\":\"");
+        o = put_lit(o, ",\"host\":null,\"truth\":\"");
     }
     o = put_lit(o, sim_pop_name(p->truth));
     o = put_lit(o, "\"}");
@@ -1164,7 +1243,7 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
     if (p->n_hist > SIM_HISTORY_CAP || !band_ok(p->band) ||
         (int)p->truth < 0 || p->truth >= SIM_POP_COUNT_)
         return -1;
-    size_t need = 160 + (size_t)p->n_hist * 26;
+    size_t need = 180 + (size_t)p->n_hist * 26;
     if (cap < need)
         return -1;
     uint8_t *o = buf;
@@ -1200,6 +1279,13 @@ static int avro_body(const sim_packet *p, uint8_t *buf, size_t cap)
         o = av_double(o, p->limit_mjd);
         o = av_band(o, p->limit_band);
         o = av_double(o, p->limit_mag);
+    } else {
+        o = av_long(o, 0);
+    }
+    if (p->has_host) {  /* union ["null", Host] */
+        o = av_long(o, 1);
+        o = av_double(o, p->host_sep_arcsec);
+        o = av_double(o, p->host_dist_mod);
     } else {
         o = av_long(o, 0);
     }

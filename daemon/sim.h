@@ -54,6 +54,7 @@
 #define SIM_HISTORY_CAP 64u  /* hard bound on history_max */
 #define SIM_NBANDS 6u
 #define SIM_MOVER_RADIUS 60.0  /* arcsec searched for a known moving body */
+#define SIM_HOST_RADIUS 10.0   /* arcsec searched for a catalogued galaxy */
 
 /* X(enum suffix, name in the schema's Population enum) */
 #define SIM_POP_MAP(X)                                                        \
@@ -128,6 +129,11 @@ typedef struct sim_packet {
     int has_limit;
     double limit_mjd, limit_mag;  /* limit_mag: that visit's 5-sigma limit */
     uint8_t limit_band;
+    /* The nearest catalogued galaxy within SIM_HOST_RADIUS (has_host 0:
+     * none, null in the encodings): separation and the distance modulus
+     * of its photometric redshift. */
+    int has_host;
+    double host_sep_arcsec, host_dist_mod;
 } sim_packet;
 
 typedef struct sim sim;
