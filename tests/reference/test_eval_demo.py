@@ -23,10 +23,10 @@ sklearn.ensemble.HistGradientBoostingClassifier, 5-fold stratified
 cross-validated probabilities, class_weight="balanced", random_state=0).
 It is no competitor (oddsky never sees a label), only a bound.
 
-The floor is the project's target, AUROC >= 0.90.  It is not met (see the
-printed figures); the test is marked xfail(strict=True) so it reports the
-measured figure on every run and turns into a failure to be noticed once
-the target is reached.
+The floor is the project's target, AUROC >= 0.90, on this seed-7 night.
+The margin is small (0.914 here; development seeds 101, 202 and 303 gave
+0.926, 0.914 and 0.925; README, "Performance"), so a change that moves
+this figure by a hundredth is worth a look at other nights too.
 """
 import json
 import os
@@ -133,8 +133,5 @@ def test_flags_enrich_rare_packets(evaluated):
     assert evaluated["rare_frac_of_flags"] > evaluated["rare_fraction"]
 
 
-@pytest.mark.xfail(strict=True, reason="target AUROC 0.90 not reached: measured "
-                   "0.84 on this night (printed); first detections score at "
-                   "chance, see the split")
 def test_novelty_auroc_floor(evaluated):
     assert evaluated["auroc"] >= FLOOR
