@@ -116,6 +116,13 @@ def test_stream_properties(records):
             assert r["obs"]["mjd"] - 30.0 - 1e-9 <= lim["mjd"] < r["obs"]["mjd"]
             assert lim["band"] in "ugrizy" and len(lim["band"]) == 1
             assert lim["mjd"] not in times
+        # Schema doc of host: the nearest catalogued galaxy within 10
+        # arcsec, null when there is none.
+        host = r["host"]
+        if host is not None:
+            assert 0.0 <= host["sep_arcsec"] <= 10.0
+    hosts = Counter(r["host"] is not None for r in recs)
+    assert hosts[True] > 0 and hosts[False] > 0, hosts
     pops = Counter(r["truth"] for r in recs)
     # Every common population shows up in 2000 packets.
     for p in ("sn_thermo", "sn_cc", "periodic", "nuclear_drw", "flare", "moving", "artefact"):

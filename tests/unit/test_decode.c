@@ -730,7 +730,7 @@ static void test_demo_packets_every_framing(void **state)
     sim_sync_marker(1, sync);
     packet_features pf[4];
     uint32_t dim = featmap_dim(fm);
-    int j_mag = -1, j_lim = -1, j_span = -1;
+    int j_mag = -1, j_lim = -1, j_span = -1, j_abs = -1;
     for (uint32_t j = 0; j < dim; j++) {
         if (!strcmp(featmap_name(fm, j), "mag"))
             j_mag = (int)j;
@@ -738,8 +738,10 @@ static void test_demo_packets_every_framing(void **state)
             j_lim = (int)j;
         if (!strcmp(featmap_name(fm, j), "span_days"))
             j_span = (int)j;
+        if (!strcmp(featmap_name(fm, j), "abs_mag"))
+            j_abs = (int)j;
     }
-    assert_true(j_mag >= 0 && j_lim >= 0 && j_span >= 0);
+    assert_true(j_mag >= 0 && j_lim >= 0 && j_span >= 0 && j_abs >= 0);
     unsigned seen[MODEL_MAX_DIM] = {0};
     for (int i = 0; i < 3000; i++) {
         sim_packet p;
@@ -774,6 +776,10 @@ static void test_demo_packets_every_framing(void **state)
         assert_int_equal(pf[0].missing[j_lim], !p.has_limit);
         if (p.has_limit)
             assert_near(pf[0].x[j_lim], p.mjd - p.limit_mjd, 0);
+        /* abs_mag = obs.mag minus host.dist_mod, missing without a host */
+        assert_int_equal(pf[0].missing[j_abs], !p.has_host);
+        if (p.has_host)
+            assert_near(pf[0].x[j_abs], p.mag - p.host_dist_mod, 0);
         /* span_days needs 3 points (min_points), the current one included */
         double lo = p.mjd, hi = p.mjd;
         for (unsigned h = 0; h < p.n_hist; h++) {

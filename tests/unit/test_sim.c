@@ -232,6 +232,8 @@ static void test_determinism(void **state)
 typedef struct last_seen {
     double mjd, mag, err;
     int band;
+    int has_host;
+    double host_sep, host_mu;
 } last_seen;
 
 static void check_order_and_history(unsigned hmax)
@@ -243,7 +245,7 @@ static void check_order_and_history(unsigned hmax)
     assert_non_null(seen);
     double prev_mjd = -1;
     int64_t prev_id = 0;
-    long linked = 0, with_hist = 0, with_limit = 0;
+    long linked = 0, with_hist = 0, with_limit = 0, with_host = 0, n = 0;
     unsigned max_hist = 0;
     for (int i = 0; i < 200000; i++) {
         sim_next(s, &p);
@@ -280,6 +282,20 @@ static void check_order_and_history(unsigned hmax)
             with_limit++;
         }
         assert_true(p.mover_sep_arcsec >= 0.0 && p.mover_sep_arcsec <= SIM_MOVER_RADIUS);
+        /* The host: within the search radius (0.01 arcsec astrometric
+         * floor), a distance modulus of a galaxy (30..50 covers z 0.002
+         * to 4); nuclear variables sit at their galaxy's centre. */
+        n++;
+        if (p.has_host) {
+            with_host++;
+            assert_true(p.host_sep_arcsec >= 0.01 - 1e-9 &&
+                        p.host_sep_arcsec <= SIM_HOST_RADIUS);
+            assert_true(p.host_dist_mod > 30.0 && p.host_dist_mod < 50.0);
+        }
+        if (p.truth == SIM_POP_NUCLEAR) {
+            assert_true(p.has_host);
+            assert_true(p.host_sep_arcsec < 1.0);
+        }
         /* The first detection is this one or earlier than all history. */
         assert_true(p.first_mjd <= p.mjd);
         if (p.n_hist)
@@ -290,6 +306,12 @@ static void check_order_and_history(unsigned hmax)
         /* The newest history point is this source's previous packet. */
         assert_true(p.source_id > 0 && p.source_id < id_cap);
         last_seen *ls = &seen[p.source_id];
+        /* A source keeps its host (moving bodies and artefacts are new
+         * sources at every visit). */
+        if (ls->mjd > 0)
+            assert_true(p.has_host == ls->has_host &&
+                        p.host_sep_arcsec == ls->host_sep &&
+                        p.host_dist_mod == ls->host_mu);
         if (p.n_hist) {
             with_hist++;
             const sim_point *h = &p.hist[p.n_hist - 1];
@@ -305,8 +327,14 @@ static void check_order_and_history(unsigned hmax)
         ls->mag = p.mag;
         ls->err = p.mag_err;
         ls->band = p.band;
+        ls->has_host = p.has_host;
+        ls->host_sep = p.host_sep_arcsec;
+        ls->host_mu = p.host_dist_mod;
     }
     assert_true(with_hist > 100000);
+    /* Some packets have a host and some do not (about half of the stars,
+     * movers and artefacts have a galaxy nearby by chance). */
+    assert_true(with_host > n / 5 && with_host < n - n / 10);
     /* Moving objects and artefacts (23% of packets) are new at every
      * visit, so past the first visits of their field they all have a
      * prior limit; so do transients that were below the limit on an
@@ -474,6 +502,14 @@ static void check_json(const sim_packet *p, const char *txt, int n)
     } else {
         assert_true(json_is_null(lim));
     }
+    json_t *host = json_object_get(o, "host");
+    assert_non_null(host);  /* present, null when there is none */
+    if (p->has_host) {
+        assert_true(json_real_value(json_object_get(host, "sep_arcsec")) == p->host_sep_arcsec);
+        assert_true(json_real_value(json_object_get(host, "dist_mod")) == p->host_dist_mod);
+    } else {
+        assert_true(json_is_null(host));
+    }
     assert_string_equal(json_string_value(json_object_get(o, "truth")), sim_pop_name(p->truth));
     json_t *h = json_object_get(o, "history");
     assert_true(json_is_array(h));
@@ -548,6 +584,15 @@ static void check_avro_value(const sim_packet *p, avro_value_t *v)
         assert_true(rec_double(&branch, "mjd") == p->limit_mjd);
         assert_true(rec_double(&branch, "mag") == p->limit_mag);
         rec_band(&branch, p->limit_band);
+    }
+    avro_value_t host;
+    assert_int_equal(avro_value_get_by_name(v, "host", &host, NULL), 0);
+    assert_int_equal(avro_value_get_discriminant(&host, &disc), 0);
+    assert_int_equal(disc, p->has_host ? 1 : 0);
+    if (p->has_host) {
+        assert_int_equal(avro_value_get_current_branch(&host, &branch), 0);
+        assert_true(rec_double(&branch, "sep_arcsec") == p->host_sep_arcsec);
+        assert_true(rec_double(&branch, "dist_mod") == p->host_dist_mod);
     }
     assert_int_equal(avro_value_get_by_name(v, "history", &hist, NULL), 0);
     size_t n = 0;
