@@ -50,6 +50,7 @@ static const char packet_json[] =
     "{\"mjd\":60008.0,\"band\":\"y\",\"mag\":18.9,\"mag_err\":0.25},"
     "{\"mjd\":60009.0,\"band\":\"r\",\"mag\":19.4,\"mag_err\":0.06}],"
     "\"prior_limit\":{\"mjd\":60009.5,\"band\":\"g\",\"mag\":23.1},"
+    "\"host\":{\"sep_arcsec\":0.8,\"dist_mod\":40.2},"
     "\"truth\":\"periodic\"}";
 
 static uint8_t packet_avro[1024];
@@ -119,6 +120,10 @@ static void encode_packet(void)
     n += put_double(p + n, json_number_value(json_object_get(lim, "mjd")));
     n += put_string(p + n, json_string_value(json_object_get(lim, "band")));
     n += put_double(p + n, json_number_value(json_object_get(lim, "mag")));
+    json_t *host = json_object_get(r, "host");
+    n += put_long(p + n, 1); /* union ["null", Host]: branch 1 */
+    n += put_double(p + n, json_number_value(json_object_get(host, "sep_arcsec")));
+    n += put_double(p + n, json_number_value(json_object_get(host, "dist_mod")));
     n += put_long(p + n, 2); /* truth: "periodic" */
     packet_avro_len = n;
     json_decref(r);
