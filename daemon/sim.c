@@ -408,8 +408,8 @@ static void place_source(sim *s, src *o, unsigned f)
 }
 
 /* Host galaxies (invented rates and spreads).  The catalogue's distance
- * modulus comes from a photometric redshift, off by a normal 0.3 mag; a
- * tenth of the transients sit in galaxies below the catalogue's limit; a
+ * modulus comes from a photometric redshift, off by a normal 0.3 mag; 12%
+ * of the transients sit in galaxies below the catalogue's limit; a
  * random position has a catalogued galaxy within the search radius about
  * half the time (galaxy counts of order 1e5 per square degree), at a
  * distance modulus spread around 41. */
@@ -525,8 +525,8 @@ static void spawn_nuclear(sim *s, src *o, double t)
     o->m.drw.sigma = uni(s, 0.08, 0.30);
     o->m.drw.x = o->m.drw.sigma * rng_normal(&s->r);  /* stationary start */
     o->m.drw.t_last = t;
-    /* Nuclear variability in galaxies of absolute magnitude -20 to -23
-     * (invented range). */
+    /* The nucleus's mean brightness is at absolute magnitude -20 to -23
+     * (invented range), which places its galaxy. */
     host_own(s, o, mean_r - uni(s, -23.0, -20.0), 1);
 }
 
