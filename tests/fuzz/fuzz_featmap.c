@@ -8,8 +8,9 @@
  * The text is parsed with jansson first (nesting limited to FM_MAX_DEPTH
  * by a scan before parsing, as config files are small and flat; deeper
  * texts are skipped).  A spec that compiles is planned against the demo
- * schema and extracts from two fixed packets, one JSON and one bare Avro
- * (same packet), through a decoder as the daemon uses it.
+ * schema and extracts from fixed packets, each as JSON and as bare Avro
+ * (same packet), through a decoder as the daemon uses it: one with a host
+ * and one with host null, so both branches of that union are read.
  *
  * Invariants checked besides the sanitizers:
  *  - featmap_validate() counts exactly the problems it reports, and
@@ -33,28 +34,34 @@
 
 #define FM_MAX_DEPTH 24u
 
-/* One demo packet with a short history (all six bands, one error 0, a
- * repeated band), as JSON; the Avro form is encoded from it below. */
-static const char packet_json[] =
-    "{\"packet_id\":123,\"source\":{\"id\":77,\"ra_deg\":10.5,\"dec_deg\":-3.25,"
-    "\"first_mjd\":59001.5},"
-    "\"obs\":{\"mjd\":60010.25,\"band\":\"r\",\"mag\":19.5,\"mag_err\":0.05,"
-    "\"quality\":0.9,\"field\":4,\"mover_sep_arcsec\":60.0},\"history\":["
-    "{\"mjd\":60001.0,\"band\":\"g\",\"mag\":20.1,\"mag_err\":0.1},"
-    "{\"mjd\":60002.0,\"band\":\"r\",\"mag\":19.9,\"mag_err\":0.08},"
-    "{\"mjd\":60003.5,\"band\":\"i\",\"mag\":19.7,\"mag_err\":0.0},"
-    "{\"mjd\":60004.0,\"band\":\"r\",\"mag\":19.6,\"mag_err\":0.07},"
-    "{\"mjd\":60005.0,\"band\":\"g\",\"mag\":20.3,\"mag_err\":0.12},"
-    "{\"mjd\":60006.0,\"band\":\"z\",\"mag\":19.2,\"mag_err\":0.2},"
-    "{\"mjd\":60007.0,\"band\":\"u\",\"mag\":21.0,\"mag_err\":0.3},"
-    "{\"mjd\":60008.0,\"band\":\"y\",\"mag\":18.9,\"mag_err\":0.25},"
-    "{\"mjd\":60009.0,\"band\":\"r\",\"mag\":19.4,\"mag_err\":0.06}],"
+/* A demo packet with a short history (all six bands, one error 0, a
+ * repeated band), as JSON, up to its host; the Avro forms are encoded
+ * from the JSON texts below. */
+#define PACKET_JSON_HEAD                                                          \
+    "{\"packet_id\":123,\"source\":{\"id\":77,\"ra_deg\":10.5,\"dec_deg\":-3.25," \
+    "\"first_mjd\":59001.5},"                                                     \
+    "\"obs\":{\"mjd\":60010.25,\"band\":\"r\",\"mag\":19.5,\"mag_err\":0.05,"     \
+    "\"quality\":0.9,\"field\":4,\"mover_sep_arcsec\":60.0},\"history\":["        \
+    "{\"mjd\":60001.0,\"band\":\"g\",\"mag\":20.1,\"mag_err\":0.1},"              \
+    "{\"mjd\":60002.0,\"band\":\"r\",\"mag\":19.9,\"mag_err\":0.08},"             \
+    "{\"mjd\":60003.5,\"band\":\"i\",\"mag\":19.7,\"mag_err\":0.0},"              \
+    "{\"mjd\":60004.0,\"band\":\"r\",\"mag\":19.6,\"mag_err\":0.07},"             \
+    "{\"mjd\":60005.0,\"band\":\"g\",\"mag\":20.3,\"mag_err\":0.12},"             \
+    "{\"mjd\":60006.0,\"band\":\"z\",\"mag\":19.2,\"mag_err\":0.2},"              \
+    "{\"mjd\":60007.0,\"band\":\"u\",\"mag\":21.0,\"mag_err\":0.3},"              \
+    "{\"mjd\":60008.0,\"band\":\"y\",\"mag\":18.9,\"mag_err\":0.25},"             \
+    "{\"mjd\":60009.0,\"band\":\"r\",\"mag\":19.4,\"mag_err\":0.06}],"            \
     "\"prior_limit\":{\"mjd\":60009.5,\"band\":\"g\",\"mag\":23.1},"
-    "\"host\":{\"sep_arcsec\":0.8,\"dist_mod\":40.2},"
-    "\"truth\":\"periodic\"}";
 
-static uint8_t packet_avro[1024];
-static size_t packet_avro_len;
+static const char *const packet_json[] = {
+    PACKET_JSON_HEAD "\"host\":{\"sep_arcsec\":0.8,\"dist_mod\":40.2},"
+                     "\"truth\":\"periodic\"}",
+    PACKET_JSON_HEAD "\"host\":null,\"truth\":\"periodic\"}",
+};
+#define N_PACKETS (sizeof packet_json / sizeof packet_json[0])
+
+static uint8_t packet_avro[N_PACKETS][1024];
+static size_t packet_avro_len[N_PACKETS];
 static char bare_path[PATH_MAX], dir[PATH_MAX];
 static packet_features f_json, f_avro;
 static int errs_seen;
@@ -84,13 +91,13 @@ static size_t put_string(uint8_t *p, const char *s)
     return k + n;
 }
 
-/* Avro binary of packet_json under the demo schema (Avro 1.11 spec). */
-static void encode_packet(void)
+/* Avro binary of packet_json[k] under the demo schema (Avro 1.11 spec). */
+static void encode_packet(size_t k)
 {
     json_error_t jerr;
-    json_t *r = json_loads(packet_json, 0, &jerr);
+    json_t *r = json_loads(packet_json[k], 0, &jerr);
     fuzz_check(r != NULL, "fixed packet parses");
-    uint8_t *p = packet_avro;
+    uint8_t *p = packet_avro[k];
     size_t n = 0;
     json_t *src = json_object_get(r, "source"), *obs = json_object_get(r, "obs");
     n += put_long(p + n, json_integer_value(json_object_get(r, "packet_id")));
@@ -121,11 +128,16 @@ static void encode_packet(void)
     n += put_string(p + n, json_string_value(json_object_get(lim, "band")));
     n += put_double(p + n, json_number_value(json_object_get(lim, "mag")));
     json_t *host = json_object_get(r, "host");
-    n += put_long(p + n, 1); /* union ["null", Host]: branch 1 */
-    n += put_double(p + n, json_number_value(json_object_get(host, "sep_arcsec")));
-    n += put_double(p + n, json_number_value(json_object_get(host, "dist_mod")));
+    fuzz_check(host != NULL, "fixed packet has a host key");
+    if (json_is_null(host)) {
+        n += put_long(p + n, 0); /* union ["null", Host]: branch 0 */
+    } else {
+        n += put_long(p + n, 1); /* union ["null", Host]: branch 1 */
+        n += put_double(p + n, json_number_value(json_object_get(host, "sep_arcsec")));
+        n += put_double(p + n, json_number_value(json_object_get(host, "dist_mod")));
+    }
     n += put_long(p + n, 2); /* truth: "periodic" */
-    packet_avro_len = n;
+    packet_avro_len[k] = n;
     json_decref(r);
 }
 
@@ -147,7 +159,8 @@ int LLVMFuzzerInitialize(int *argc, char ***argv)
     fuzz_write(dir, "bare.avsc", schema, len);
     free(schema);
     snprintf(bare_path, sizeof bare_path, "%s/bare.avsc", dir);
-    encode_packet();
+    for (size_t k = 0; k < N_PACKETS; k++)
+        encode_packet(k);
     atexit(cleanup);
     return 0;
 }
@@ -241,19 +254,21 @@ int LLVMFuzzerTestOneInput(const uint8_t *data, size_t size)
     decoder_opts o = {.writer_schema_path = bare_path, .fm = fm};
     decoder *d = decoder_new(&o, err, sizeof err);
     fuzz_check(d != NULL, "a valid map builds a decoder on the demo schema");
-    int rj = decoder_extract(d, packet_json, sizeof packet_json - 1, &f_json);
-    check_features(rj, fm, &f_json);
-    int ra = decoder_extract(d, packet_avro, packet_avro_len, &f_avro);
-    check_features(ra, fm, &f_avro);
-    fuzz_check(rj == ra, "JSON and Avro forms give the same result");
-    if (rj == 0) {
-        fuzz_check(!memcmp(f_json.x, f_avro.x, dim * sizeof f_json.x[0]) &&
-                       !memcmp(f_json.err, f_avro.err, dim * sizeof f_json.err[0]) &&
-                       !memcmp(f_json.missing, f_avro.missing, dim) &&
-                       f_json.history_points == f_avro.history_points &&
-                       !strcmp(f_json.packet_id, f_avro.packet_id) &&
-                       !strcmp(f_json.source_id, f_avro.source_id),
-                   "JSON and Avro forms give the same features");
+    for (size_t k = 0; k < N_PACKETS; k++) {
+        int rj = decoder_extract(d, packet_json[k], strlen(packet_json[k]), &f_json);
+        check_features(rj, fm, &f_json);
+        int ra = decoder_extract(d, packet_avro[k], packet_avro_len[k], &f_avro);
+        check_features(ra, fm, &f_avro);
+        fuzz_check(rj == ra, "JSON and Avro forms give the same result");
+        if (rj == 0) {
+            fuzz_check(!memcmp(f_json.x, f_avro.x, dim * sizeof f_json.x[0]) &&
+                           !memcmp(f_json.err, f_avro.err, dim * sizeof f_json.err[0]) &&
+                           !memcmp(f_json.missing, f_avro.missing, dim) &&
+                           f_json.history_points == f_avro.history_points &&
+                           !strcmp(f_json.packet_id, f_avro.packet_id) &&
+                           !strcmp(f_json.source_id, f_avro.source_id),
+                       "JSON and Avro forms give the same features");
+        }
     }
     decoder_free(d);
     featmap_free(fm);

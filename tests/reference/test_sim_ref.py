@@ -88,6 +88,10 @@ def test_json_lines_carry_the_same_packets(outputs, records):
     # Same seed, same packets; numbers are quantised, so equal exactly.
     for a, j in zip(recs, lines):
         assert a == j
+    # Named for the nullable host: the key is in every line (null or the
+    # record), and both forms occur.
+    assert all(j["host"] == a["host"] for a, j in zip(recs, lines))
+    assert {j["host"] is None for j in lines} == {True, False}
 
 
 def test_stream_properties(records):
@@ -117,12 +121,29 @@ def test_stream_properties(records):
             assert lim["band"] in "ugrizy" and len(lim["band"]) == 1
             assert lim["mjd"] not in times
         # Schema doc of host: the nearest catalogued galaxy within 10
-        # arcsec, null when there is none.
+        # arcsec, null when there is none; a galaxy's distance modulus
+        # (30..50 covers z from about 0.002 to 4).
         host = r["host"]
         if host is not None:
             assert 0.0 <= host["sep_arcsec"] <= 10.0
+            assert math.isfinite(host["dist_mod"]) and 30.0 < host["dist_mod"] < 50.0
+        # Nuclear variables sit at their galaxy's centre.
+        if r["truth"] == "nuclear_drw":
+            assert host is not None and host["sep_arcsec"] < 1.0, r
     hosts = Counter(r["host"] is not None for r in recs)
     assert hosts[True] > 0 and hosts[False] > 0, hosts
+    # A source keeps its host across its packets (moving bodies and
+    # artefacts are new sources at every visit).
+    host_of, kept = {}, 0
+    for r in recs:
+        if r["truth"] in ("moving", "artefact"):
+            continue
+        sid = r["source"]["id"]
+        if sid in host_of:
+            assert r["host"] == host_of[sid], (sid, r["host"], host_of[sid])
+            kept += 1
+        host_of[sid] = r["host"]
+    assert kept > 100, kept
     pops = Counter(r["truth"] for r in recs)
     # Every common population shows up in 2000 packets.
     for p in ("sn_thermo", "sn_cc", "periodic", "nuclear_drw", "flare", "moving", "artefact"):

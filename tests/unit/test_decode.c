@@ -730,7 +730,7 @@ static void test_demo_packets_every_framing(void **state)
     sim_sync_marker(1, sync);
     packet_features pf[4];
     uint32_t dim = featmap_dim(fm);
-    int j_mag = -1, j_lim = -1, j_span = -1, j_abs = -1;
+    int j_mag = -1, j_lim = -1, j_span = -1, j_abs = -1, j_sep = -1;
     for (uint32_t j = 0; j < dim; j++) {
         if (!strcmp(featmap_name(fm, j), "mag"))
             j_mag = (int)j;
@@ -740,9 +740,12 @@ static void test_demo_packets_every_framing(void **state)
             j_span = (int)j;
         if (!strcmp(featmap_name(fm, j), "abs_mag"))
             j_abs = (int)j;
+        if (!strcmp(featmap_name(fm, j), "host_sep_log"))
+            j_sep = (int)j;
     }
-    assert_true(j_mag >= 0 && j_lim >= 0 && j_span >= 0 && j_abs >= 0);
+    assert_true(j_mag >= 0 && j_lim >= 0 && j_span >= 0 && j_abs >= 0 && j_sep >= 0);
     unsigned seen[MODEL_MAX_DIM] = {0};
+    unsigned hostless = 0;
     for (int i = 0; i < 3000; i++) {
         sim_packet p;
         assert_int_equal(sim_next(sm, &p), 0);
@@ -780,6 +783,11 @@ static void test_demo_packets_every_framing(void **state)
         assert_int_equal(pf[0].missing[j_abs], !p.has_host);
         if (p.has_host)
             assert_near(pf[0].x[j_abs], p.mag - p.host_dist_mod, 0);
+        /* host_sep_log = log10(host.sep_arcsec), missing without a host */
+        assert_int_equal(pf[0].missing[j_sep], !p.has_host);
+        if (p.has_host)
+            assert_near(pf[0].x[j_sep], log10(p.host_sep_arcsec), 0);
+        hostless += !p.has_host;
         /* span_days needs 3 points (min_points), the current one included */
         double lo = p.mjd, hi = p.mjd;
         for (unsigned h = 0; h < p.n_hist; h++) {
@@ -801,6 +809,8 @@ static void test_demo_packets_every_framing(void **state)
             print_error("feature %s never present\n", featmap_name(fm, j));
         assert_true(seen[j] > 0);
     }
+    /* ... and the host features are missing in some (host null) */
+    assert_true(hostless > 0);
     sim_free(sm);
     decoder_free(d);
     featmap_free(fm);

@@ -246,6 +246,7 @@ static void check_order_and_history(unsigned hmax)
     double prev_mjd = -1;
     int64_t prev_id = 0;
     long linked = 0, with_hist = 0, with_limit = 0, with_host = 0, n = 0;
+    long nuclear = 0, host_kept = 0;
     unsigned max_hist = 0;
     for (int i = 0; i < 200000; i++) {
         sim_next(s, &p);
@@ -293,6 +294,7 @@ static void check_order_and_history(unsigned hmax)
             assert_true(p.host_dist_mod > 30.0 && p.host_dist_mod < 50.0);
         }
         if (p.truth == SIM_POP_NUCLEAR) {
+            nuclear++;
             assert_true(p.has_host);
             assert_true(p.host_sep_arcsec < 1.0);
         }
@@ -308,10 +310,12 @@ static void check_order_and_history(unsigned hmax)
         last_seen *ls = &seen[p.source_id];
         /* A source keeps its host (moving bodies and artefacts are new
          * sources at every visit). */
-        if (ls->mjd > 0)
+        if (ls->mjd > 0) {
             assert_true(p.has_host == ls->has_host &&
                         p.host_sep_arcsec == ls->host_sep &&
                         p.host_dist_mod == ls->host_mu);
+            host_kept += p.has_host;
+        }
         if (p.n_hist) {
             with_hist++;
             const sim_point *h = &p.hist[p.n_hist - 1];
@@ -335,6 +339,9 @@ static void check_order_and_history(unsigned hmax)
     /* Some packets have a host and some do not (about half of the stars,
      * movers and artefacts have a galaxy nearby by chance). */
     assert_true(with_host > n / 5 && with_host < n - n / 10);
+    /* ... and the per-population checks above were not vacuous. */
+    assert_true(nuclear > 1000);
+    assert_true(host_kept > 10000);
     /* Moving objects and artefacts (23% of packets) are new at every
      * visit, so past the first visits of their field they all have a
      * prior limit; so do transients that were below the limit on an
@@ -691,9 +698,11 @@ static void test_encodings_decode(void **state)
     uint8_t sync[16];
     sim_sync_marker(3, sync);
     unsigned seen_pop = 0;
+    int seen_host[2] = {0, 0};  /* packets with host null, with a Host */
     for (int i = 0; i < 4000; i++) {
         sim_next(s, &p);
         seen_pop |= 1u << p.truth;
+        seen_host[p.has_host ? 1 : 0]++;
         int n = sim_encode_json(&p, js, sizeof js);
         assert_true(n > 0);
         check_json(&p, js, n);
@@ -738,6 +747,8 @@ static void test_encodings_decode(void **state)
         }
     }
     assert_int_equal(seen_pop, (1u << SIM_POP_COUNT_) - 1);  /* all populations exercised */
+    /* both branches of the host union went through every encoding */
+    assert_true(seen_host[0] > 100 && seen_host[1] > 100);
     /* Too small a buffer is refused, not overrun. */
     assert_int_equal(sim_encode_json(&p, js, 10), -1);
     assert_int_equal(sim_encode_avro(&p, av, 10), -1);
