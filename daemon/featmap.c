@@ -1096,6 +1096,8 @@ static int av_text(avro_value_t v, char *buf, size_t cap)
         if (avro_value_get_string(&v, &p, &size) || !p)
             return RAW_TYPE;
         size_t n = size ? strnlen(p, size) : 0; /* size counts the NUL */
+        if (size && n < size - 1)
+            return RAW_TYPE;  /* a NUL inside the text: not a usable id or band */
         if (n >= cap)
             return -1;
         memcpy(buf, p, n);
@@ -1525,12 +1527,12 @@ static int ids(const featmap *fm, int st_id, int st_src, packet_features *out)
 {
     if (st_id < 0)
         return PACKET_E_ID_TOO_LONG;
-    if (st_id != RAW_OK)
+    if (st_id != RAW_OK || !out->packet_id[0])
         return PACKET_E_MISSING_ID;
     if (fm->slot[SLOT_SOURCE].n) {
         if (st_src < 0)
             return PACKET_E_ID_TOO_LONG;
-        if (st_src != RAW_OK)
+        if (st_src != RAW_OK || !out->source_id[0])
             return PACKET_E_MISSING_SOURCE;
     } else {
         memcpy(out->source_id, out->packet_id, sizeof out->source_id);

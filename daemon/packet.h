@@ -41,10 +41,10 @@
       "JSON text whose top level is not an object")                           \
     X(UNKNOWN_FRAMING, -12, "unknown_framing",                                \
       "no framing matches (and no bare-Avro writer schema is configured)")    \
-    X(MISSING_ID, -13, "missing_id", "packet id absent, null or not a "       \
-                                     "string or integer")                     \
+    X(MISSING_ID, -13, "missing_id", "packet id absent, null, empty or not "  \
+                                     "a string or integer")                   \
     X(MISSING_SOURCE, -14, "missing_source",                                  \
-      "source id absent, null or not a string or integer")                    \
+      "source id absent, null, empty or not a string or integer")             \
     X(ID_TOO_LONG, -15, "id_too_long",                                        \
       "packet or source id longer than PACKET_ID_MAX - 1 bytes")              \
     X(INTERNAL, -16, "internal", "out of memory or a library failure")       \
